@@ -1,0 +1,3 @@
+"""Bundled classifiers stages."""
+
+STAGES: list[type] = []

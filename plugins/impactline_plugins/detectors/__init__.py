@@ -1,0 +1,3 @@
+"""Bundled detectors stages."""
+
+STAGES: list[type] = []

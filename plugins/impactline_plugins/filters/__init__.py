@@ -1,0 +1,3 @@
+"""Bundled filters stages."""
+
+STAGES: list[type] = []

@@ -1,0 +1,3 @@
+"""Bundled measures stages."""
+
+STAGES: list[type] = []

@@ -1,0 +1,3 @@
+"""Bundled readers stages."""
+
+STAGES: list[type] = []
