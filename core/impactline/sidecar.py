@@ -54,9 +54,9 @@ def load_sidecar(data_path: Path) -> tuple[dict[str, Any], Path | None]:
         settings = json.loads(path.read_text(encoding="utf-8"))
     except json.JSONDecodeError as exc:
         raise InputError(path, f"sidecar is not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg})",
-                         "correct the JSON or remove the sidecar and give the settings in the pipeline file")
+                         "correct the JSON or remove the sidecar and give the settings in the pipeline file") from None
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(path, f"sidecar cannot be read ({exc})", "check the file's permissions and encoding")
+        raise InputError(path, f"sidecar cannot be read ({exc})", "check the file's permissions and encoding") from None
     if not isinstance(settings, dict):
         raise InputError(path, f"sidecar must be a JSON object, got {type(settings).__name__}",
                          'write e.g. {"sample_rate_hz": 250000}')

@@ -1,0 +1,618 @@
+"""The streaming runner: reader -> filters -> detector -> measures, chunk by chunk, files in parallel.
+
+Memory stays bounded whatever the file length: the runner holds one chunk, the filters' own state, and a
+history of filtered samples only as long as the detector's look-back plus the measures' context.
+
+One file
+    :func:`process_recording` streams one file and returns its events table and its ``files.parquet`` row.
+Many files
+    :func:`run` maps files over a process pool, writes one events part per file atomically, skips files
+    already done by the same pipeline (resume), records failures without stopping, then runs the
+    classifier over all events and writes ``files.parquet`` and ``run.json``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import shutil
+import sys
+import time
+import traceback
+from collections.abc import Callable, Iterable, Sequence
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from glob import glob
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from . import __version__
+from .errors import ImpactlineError, InputError
+from .output import (
+    CONTRACT_COLUMNS,
+    EVENTS_DIR,
+    FILE_COLUMNS,
+    FILES_TABLE,
+    LABELS_TABLE,
+    RUN_JSON,
+    SIZING_COLUMNS,
+    file_fingerprint,
+    part_name,
+    read_events,
+    read_part_metadata,
+    schema_for,
+    table_from_rows,
+    write_json_atomic,
+    write_table_atomic,
+)
+from .pipeline import Pipeline, parse_pipeline
+from .stages import Column, Event, EventWindow, FilterInfo
+
+__all__ = ["FileResult", "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
+
+NOISE_BLOCK_SAMPLES = 1 << 16
+
+
+@dataclass
+class FileResult:
+    """Outcome of one input file."""
+
+    row: dict[str, Any]
+    events: pa.Table | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.row["status"] in ("ok", "skipped")
+
+
+@dataclass
+class RunResult:
+    """Outcome of a run over many files."""
+
+    out_dir: Path | None
+    files: pa.Table
+    events: pa.Table
+    pipeline_hash: str
+    failed: list[str] = field(default_factory=list)
+
+    @property
+    def n_failed(self) -> int:
+        return len(self.failed)
+
+
+def events_schema(pipeline: Pipeline) -> pa.Schema:
+    """The events schema a pipeline produces: contract columns, detector extras, measures, sizing."""
+    columns: dict[str, Column] = dict(CONTRACT_COLUMNS)
+    columns.update(pipeline.registry.get("detector", pipeline.detector_spec.name).cls.columns)
+    for spec in pipeline.measure_specs:
+        columns.update(pipeline.registry.get("measure", spec.name).cls.columns)
+    if pipeline.sizing:
+        columns.update(SIZING_COLUMNS)
+    return schema_for(columns, {"impactline.pipeline_hash": pipeline.hash, "impactline.version": __version__})
+
+
+# ------------------------------------------------------------------------------------------------ one file
+class _History:
+    """Filtered samples from absolute index ``start`` on, trimmed as events are measured."""
+
+    def __init__(self) -> None:
+        self.data = np.empty(0)
+        self.start = 0
+
+    @property
+    def end(self) -> int:
+        return self.start + self.data.size
+
+    def append(self, samples: np.ndarray) -> None:
+        self.data = np.concatenate([self.data, samples]) if self.data.size else samples.copy()
+
+    def trim(self, keep_from: int) -> None:
+        drop = min(max(0, keep_from - self.start), self.data.size)
+        if drop:
+            self.data = self.data[drop:].copy()
+            self.start += drop
+
+    def get(self, start: int, end: int) -> np.ndarray:
+        return self.data[start - self.start:end - self.start]
+
+
+class _NoiseMeter:
+    """Robust rms noise of a stream: 1.4826 x MAD in fixed absolute blocks, median over blocks.
+
+    The MAD is about the block median, so events (a small fraction of samples) barely move it; blocks
+    start at absolute multiples of the block length, so chunking cannot change the result.
+    """
+
+    def __init__(self, block: int = NOISE_BLOCK_SAMPLES):
+        self.block = block
+        self.pending = np.empty(0)
+        self.estimates: list[float] = []
+
+    def push(self, samples: np.ndarray) -> None:
+        data = np.concatenate([self.pending, samples]) if self.pending.size else samples
+        whole = (data.size // self.block) * self.block
+        if whole:
+            blocks = data[:whole].reshape(-1, self.block)
+            median = np.median(blocks, axis=1, keepdims=True)
+            self.estimates.extend((1.4826 * np.median(np.abs(blocks - median), axis=1)).tolist())
+        self.pending = data[whole:].copy()
+
+    def result(self) -> float:
+        estimates = list(self.estimates)
+        if self.pending.size >= 1024 or not estimates and self.pending.size > 1:
+            tail = self.pending
+            estimates.append(float(1.4826 * np.median(np.abs(tail - np.median(tail)))))
+        return float(np.median(estimates)) if estimates else float("nan")
+
+
+def _check_finite(samples: np.ndarray, first_index: int, path: Path) -> None:
+    if not np.all(np.isfinite(samples)):
+        bad = int(np.flatnonzero(~np.isfinite(samples))[0])
+        raise InputError(path, f"sample is {samples[bad]} (not a finite number)",
+                         "repair or trim the recording; impactline does not guess missing samples",
+                         sample_index=first_index + bad)
+
+
+def process_recording(pipeline: Pipeline, path: str | Path, *,
+                      progress: Callable[[int, int | None], None] | None = None) -> FileResult:
+    """Stream one recording through the pipeline.
+
+    Parameters
+    ----------
+    pipeline : Pipeline
+        A loaded pipeline.
+    path : path-like
+        The recording.
+    progress : callable, optional
+        Called as ``progress(samples_done, n_samples_or_None)`` after each chunk.
+
+    Returns
+    -------
+    FileResult
+        ``events`` (a table with :func:`events_schema`) and the ``files.parquet`` row.
+
+    Raises
+    ------
+    InputError
+        When the file cannot be read, with the file and sample index.
+    """
+    path = Path(path)
+    started = time.perf_counter()
+    reader = pipeline.build_reader(path)
+    recording = reader.open(path)
+    fs = float(recording.sample_rate_hz)
+    filters = pipeline.build_filters()
+    detector = pipeline.build_detector()
+    measures = pipeline.build_measures()
+    try:
+        filter_states = [f.start(fs) for f in filters]
+        detector_state = detector.start(fs)
+    except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
+        raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
+    chain = _chain_info(filters, fs)
+    contexts = [m.context_samples(fs) for m in measures]
+    pre = max([c[0] for c in contexts], default=0)
+    post = max([c[1] for c in contexts], default=0)
+    lookback = int(detector.lookback_samples(fs))
+
+    history = _History()
+    noise = _NoiseMeter()
+    pending: list[Event] = []
+    rows: list[dict[str, Any]] = []
+    state = {"last_start": None, "last_index": -1}
+    material = pipeline.material()
+    schema = events_schema(pipeline)
+    filtered_count = 0
+    read_count = 0
+
+    def measure_ready(stream_done: bool) -> None:
+        while pending and (stream_done or pending[0].end_index + post <= history.end):
+            event = pending.pop(0)
+            rows.append(_measure_event(event, history, pre, post, fs, chain, measures, detector.name,
+                                       str(path), len(rows), state, material, filtered_count))
+
+    def accept(events: list[Event]) -> None:
+        for event in events:
+            if not (state["last_index"] <= event.start_index < event.end_index <= filtered_count):
+                raise ImpactlineError(
+                    f"{path}: detector {detector.name!r} broke its contract: event "
+                    f"[{event.start_index}, {event.end_index}) is empty, out of order or beyond the "
+                    f"{filtered_count} samples it was given")
+            if event.start_index < history.start:
+                raise ImpactlineError(
+                    f"{path}: detector {detector.name!r} reported an event starting at sample "
+                    f"{event.start_index}, further back than its declared look-back of {lookback} samples")
+            state["last_index"] = event.start_index
+            pending.append(event)
+
+    def push_filtered(samples: np.ndarray) -> None:
+        nonlocal filtered_count, detector_state
+        if samples.size == 0:
+            return
+        first = filtered_count
+        history.append(samples)
+        noise.push(samples)
+        filtered_count += samples.size
+        events, detector_state = detector.process(samples, first, detector_state)
+        accept(events)
+        measure_ready(False)
+        keep_from = filtered_count - lookback - pre
+        if pending:
+            keep_from = min(keep_from, pending[0].start_index - pre)
+        history.trim(keep_from)
+
+    for chunk in recording.iter_chunks(pipeline.chunk_samples):
+        samples = np.asarray(chunk, dtype=np.float64)
+        _check_finite(samples, read_count, path)
+        read_count += samples.size
+        for i, filt in enumerate(filters):
+            samples, filter_states[i] = filt.process(samples, filter_states[i])
+        push_filtered(samples)
+        if progress is not None:
+            progress(read_count, recording.n_samples)
+    if read_count == 0:
+        raise InputError(path, "recording holds no samples", "check that the acquisition wrote data")
+    push_filtered(_flush_filters(filters, filter_states))
+    if filtered_count != read_count:
+        raise ImpactlineError(f"{path}: the filters returned {filtered_count} samples for {read_count} read; "
+                              "a filter broke the stream contract")
+    accept(detector.finish(detector_state))
+    measure_ready(True)
+
+    table = table_from_rows(rows, schema)
+    duration = read_count / fs
+    row = _file_row(path, recording, reader.name, fs, read_count, duration, noise.result(), table, material,
+                    pipeline.hash, time.perf_counter() - started)
+    return FileResult(row=row, events=table)
+
+
+def _chain_info(filters, fs: float) -> FilterInfo:
+    if not filters:
+        return FilterInfo(cutoff_hz=fs / 2, rise_time_s=None, delay_s=0.0)
+    from .bandwidth import cascade_info
+
+    return cascade_info(filters, fs)
+
+
+def _flush_filters(filters, states) -> np.ndarray:
+    """Drain the filters at the end of the stream: each filter's tail passes through the ones after it."""
+    carry = np.empty(0)
+    for i, filt in enumerate(filters):
+        if carry.size:
+            carry, states[i] = filt.process(carry, states[i])
+        tail = filt.finish(states[i])
+        carry = np.concatenate([carry, tail]) if carry.size else np.asarray(tail, dtype=np.float64)
+    return carry
+
+
+def _measure_event(event: Event, history: _History, pre: int, post: int, fs: float, chain: FilterInfo,
+                   measures, detector_name: str, file: str, event_id: int, state: dict, material,
+                   stream_end: int) -> dict[str, Any]:
+    window_start = max(history.start, event.start_index - pre)
+    window_end = min(history.end, event.end_index + post)
+    signal = history.get(window_start, window_end)
+    start = event.start_index - window_start
+    end = event.end_index - window_start
+    excursion = signal[start:end] - event.baseline_A
+    peak = float(excursion[int(np.argmax(event.polarity * excursion))])
+    delay_samples = (chain.delay_s or 0.0) * fs
+    start_s = (event.start_index - delay_samples) / fs
+    end_s = (event.end_index - delay_samples) / fs
+    previous = state["last_start"]
+    state["last_start"] = start_s
+    noise = float(event.noise_rms_A)
+    row: dict[str, Any] = {
+        "file": file,
+        "event_id": event_id,
+        "start_s": start_s,
+        "end_s": end_s,
+        "duration_s": end_s - start_s,
+        "start_index": int(round(event.start_index - delay_samples)),
+        "end_index": int(round(event.end_index - delay_samples)),
+        "baseline_A": float(event.baseline_A),
+        "peak_A": peak,
+        "charge_C": float(np.sum(excursion) / fs),
+        "noise_rms_A": noise,
+        "snr": abs(peak) / noise if noise > 0 else float("inf"),
+        "inter_event_interval_s": start_s - previous if previous is not None else float("nan"),
+        "detector": detector_name,
+    }
+    row.update(event.extras)
+    window = EventWindow(signal=signal, window_start_index=window_start, start=start, end=end,
+                         sample_rate_hz=fs, event=event, filter_info=chain)
+    for measure in measures:
+        values = measure.measure(window)
+        missing = set(measure.columns) - set(values)
+        if missing:
+            raise ImpactlineError(f"measure {measure.name!r} did not return {sorted(missing)} for event "
+                                  f"{event_id} of {file}; a measure must return every declared column")
+        row.update({k: values[k] for k in measure.columns})
+    if material is not None:
+        from .physics import diameter_from_charge
+
+        row["diameter_m"] = float(diameter_from_charge(row["charge_C"], material))
+    return row
+
+
+def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int, duration: float,
+              noise_rms: float, table: pa.Table, material, pipeline_hash: str, seconds: float) -> dict[str, Any]:
+    from scipy.stats import chi2
+
+    n_events = table.num_rows
+    # Exact (Garwood 1936) 95 % interval of a Poisson count, divided by the observation time.
+    low = 0.5 * chi2.ppf(0.025, 2 * n_events) / duration if n_events else 0.0
+    high = 0.5 * chi2.ppf(0.975, 2 * (n_events + 1)) / duration
+    median_diameter = float("nan")
+    if material is not None and n_events:
+        diameters = np.asarray(table.column("diameter_m").to_numpy(zero_copy_only=False), dtype=float)
+        diameters = diameters[np.isfinite(diameters)]
+        if diameters.size:
+            median_diameter = float(np.median(diameters))
+    return {
+        "file": str(path),
+        "fingerprint": file_fingerprint(path, recording.extra_files),
+        "reader": reader_name,
+        "sample_rate_hz": fs,
+        "n_samples": n_samples,
+        "duration_s": duration,
+        "noise_rms_A": noise_rms,
+        "n_events": n_events,
+        "event_rate_per_s": n_events / duration,
+        "event_rate_low_per_s": float(low),
+        "event_rate_high_per_s": float(high),
+        "median_diameter_m": median_diameter,
+        "status": "ok",
+        "error": None,
+        "seconds": seconds,
+        "part": None,
+        "pipeline_hash": pipeline_hash,
+        # Not a files.parquet column: kept in the part metadata so resume can recompute the fingerprint.
+        "extra_files": [str(p) for p in recording.extra_files],
+    }
+
+
+# ------------------------------------------------------------------------------------------------ many files
+def expand_inputs(inputs: Iterable[str | Path]) -> list[Path]:
+    """Expand globs and folders into a sorted, de-duplicated list of files (sidecars excluded)."""
+    found: list[Path] = []
+    for item in inputs:
+        text = str(item)
+        if any(ch in text for ch in "*?["):
+            matches = [Path(p) for p in sorted(glob(text, recursive=True))]
+        elif Path(text).is_dir():
+            matches = sorted(p for p in Path(text).iterdir() if p.is_file())
+        else:
+            matches = [Path(text)]
+        for match in matches:
+            if match.is_dir() or match.name.endswith((".json", ".truth.parquet")) or match.name.startswith("."):
+                continue
+            found.append(match)
+    unique: dict[str, Path] = {}
+    for p in found:
+        unique.setdefault(str(p.resolve()), p)
+    return list(unique.values())
+
+
+def _failed_row(path: Path, error: str, pipeline_hash: str, seconds: float) -> dict[str, Any]:
+    row = {name: None for name in FILE_COLUMNS}
+    row.update(file=str(path), status="failed", error=error, pipeline_hash=pipeline_hash, seconds=seconds)
+    return row
+
+
+def _describe_error(exc: BaseException) -> str:
+    if isinstance(exc, (ImpactlineError, OSError, ValueError)):
+        return str(exc)
+    return f"{type(exc).__name__}: {exc}\n" + "".join(traceback.format_tb(exc.__traceback__)[-3:])
+
+
+_WORKER_PIPELINE: Pipeline | None = None
+
+
+def _worker_init(text: str, source: str, base_dir: str) -> None:
+    global _WORKER_PIPELINE
+    _WORKER_PIPELINE = parse_pipeline(text, source=source, base_dir=Path(base_dir))
+
+
+def _process_and_write(pipeline: Pipeline, path: Path, out_dir: Path | None,
+                       progress: Callable[[int, int | None], None] | None = None) -> FileResult:
+    started = time.perf_counter()
+    try:
+        result = process_recording(pipeline, path, progress=progress)
+    except Exception as exc:  # recorded in files.parquet; one bad file never stops the batch
+        return FileResult(row=_failed_row(path, _describe_error(exc), pipeline.hash, time.perf_counter() - started))
+    if out_dir is not None:
+        name = part_name(path)
+        result.row["part"] = name
+        metadata = dict(result.events.schema.metadata or {})
+        metadata[b"impactline.file"] = json.dumps(result.row).encode()
+        write_table_atomic(result.events.replace_schema_metadata(metadata), out_dir / EVENTS_DIR / name)
+    return result
+
+
+def _worker_task(path: str, out_dir: str | None) -> FileResult:
+    assert _WORKER_PIPELINE is not None
+    result = _process_and_write(_WORKER_PIPELINE, Path(path), Path(out_dir) if out_dir else None)
+    if out_dir is not None:
+        result.events = None  # the part is on disk; do not ship the table back through the pipe
+    return result
+
+
+def _done_before(path: Path, out_dir: Path, pipeline_hash: str) -> dict[str, Any] | None:
+    """The stored row when ``path`` was already processed by this pipeline and is unchanged."""
+    part = out_dir / EVENTS_DIR / part_name(path)
+    stored = read_part_metadata(part)
+    if not stored or stored.get("pipeline_hash") != pipeline_hash:
+        return None
+    try:
+        extra_files = [Path(p) for p in stored.get("extra_files", [])]
+        if any(not p.is_file() for p in extra_files):
+            return None
+        if file_fingerprint(path, extra_files) != stored.get("fingerprint"):
+            return None
+    except OSError:
+        return None
+    return stored
+
+
+def prepare_run_folder(out_dir: Path, pipeline: Pipeline, overwrite: bool) -> None:
+    """Create the run folder, refusing to mix results of different pipelines unless ``overwrite``."""
+    run_json = out_dir / RUN_JSON
+    if run_json.exists():
+        try:
+            previous = json.loads(run_json.read_text(encoding="utf-8")).get("pipeline_hash")
+        except (OSError, json.JSONDecodeError):
+            previous = None
+        if previous != pipeline.hash:
+            if not overwrite:
+                raise ImpactlineError(
+                    f"{out_dir} holds a run of a different pipeline (hash {str(previous)[:12]}, now "
+                    f"{pipeline.hash[:12]}); choose another --out folder or pass --overwrite to replace it")
+            for name in (EVENTS_DIR,):
+                shutil.rmtree(out_dir / name, ignore_errors=True)
+            for name in (FILES_TABLE, LABELS_TABLE, RUN_JSON):
+                (out_dir / name).unlink(missing_ok=True)
+    elif out_dir.exists() and any(out_dir.iterdir()) and not overwrite:
+        raise ImpactlineError(f"{out_dir} exists and is not an impactline run folder; choose another --out "
+                              "folder or pass --overwrite")
+    (out_dir / EVENTS_DIR).mkdir(parents=True, exist_ok=True)
+
+
+def run(pipeline: Pipeline, inputs: Sequence[str | Path], out_dir: str | Path | None = None, *, jobs: int = 1,
+        resume: bool = True, overwrite: bool = False, command: Sequence[str] | None = None,
+        on_file: Callable[[FileResult, int, int], None] | None = None,
+        on_progress: Callable[[int, int | None], None] | None = None) -> RunResult:
+    """Run a pipeline over many files.
+
+    Parameters
+    ----------
+    pipeline : Pipeline
+        A loaded pipeline.
+    inputs : sequence of path-like
+        Files, folders or glob patterns.
+    out_dir : path-like, optional
+        Run folder. Without it nothing is written and events are returned in memory.
+    jobs : int
+        Worker processes (1 = in this process).
+    resume : bool
+        Skip files already done by the same pipeline with an unchanged fingerprint.
+    overwrite : bool
+        Replace a run folder made by a different pipeline.
+    command : sequence of str, optional
+        Command line recorded in ``run.json``.
+    on_file : callable, optional
+        ``on_file(result, done, total)`` after each file.
+    on_progress : callable, optional
+        ``on_progress(samples_done, n_samples)`` within a file (single-process runs only).
+
+    Returns
+    -------
+    RunResult
+    """
+    started_at = datetime.now(UTC)
+    paths = expand_inputs(inputs)
+    out = Path(out_dir) if out_dir is not None else None
+    if out is not None:
+        prepare_run_folder(out, pipeline, overwrite)
+    results: list[FileResult] = []
+    todo: list[Path] = []
+    for path in paths:
+        stored = _done_before(path, out, pipeline.hash) if (out is not None and resume) else None
+        if stored is not None:
+            stored["status"] = "skipped"
+            results.append(FileResult(row=stored))
+            if on_file:
+                on_file(results[-1], len(results), len(paths))
+        else:
+            todo.append(path)
+
+    if jobs <= 1 or len(todo) <= 1:
+        for path in todo:
+            results.append(_process_and_write(pipeline, path, out, progress=on_progress))
+            if on_file:
+                on_file(results[-1], len(results), len(paths))
+    else:
+        base_dir = str(Path(pipeline.source).resolve().parent) if Path(pipeline.source).exists() else os.getcwd()
+        with ProcessPoolExecutor(max_workers=jobs, initializer=_worker_init,
+                                 initargs=(pipeline.text, pipeline.source, base_dir)) as pool:
+            futures = {pool.submit(_worker_task, str(p), str(out) if out else None): p for p in todo}
+            for future in as_completed(futures):
+                try:
+                    result = future.result()
+                except Exception as exc:  # a worker died (e.g. out of memory): record, keep going
+                    result = FileResult(row=_failed_row(futures[future], _describe_error(exc), pipeline.hash, 0.0))
+                results.append(result)
+                if on_file:
+                    on_file(result, len(results), len(paths))
+
+    order = {str(p): i for i, p in enumerate(paths)}
+    results.sort(key=lambda r: order.get(r.row["file"], len(order)))
+    files_table = table_from_rows([r.row for r in results], schema_for(FILE_COLUMNS, {
+        "impactline.pipeline_hash": pipeline.hash}))
+    if out is not None:
+        write_table_atomic(files_table, out / FILES_TABLE)
+        has_parts = any((out / EVENTS_DIR).glob("[!._]*.parquet"))
+        events = read_events(out) if has_parts else events_schema(pipeline).empty_table()
+    else:
+        tables = [r.events for r in results if r.events is not None]
+        events = pa.concat_tables(tables) if tables else events_schema(pipeline).empty_table()
+    events = _classify(pipeline, events, out)
+    if out is not None:
+        write_json_atomic(_run_record(pipeline, paths, command, started_at, results), out / RUN_JSON)
+    failed = [r.row["file"] for r in results if r.row["status"] == "failed"]
+    return RunResult(out_dir=out, files=files_table, events=events, pipeline_hash=pipeline.hash, failed=failed)
+
+
+def _classify(pipeline: Pipeline, events: pa.Table, out: Path | None) -> pa.Table:
+    classifier = pipeline.build_classifier()
+    if classifier is None or events.num_rows == 0:
+        return events
+    for name in list(classifier.columns):
+        if name in events.column_names:
+            events = events.drop_columns([name])
+    labels = classifier.fit_predict(events)
+    columns = {"file": CONTRACT_COLUMNS["file"], "event_id": CONTRACT_COLUMNS["event_id"], **classifier.columns}
+    rows = {"file": events.column("file"), "event_id": events.column("event_id")}
+    schema = schema_for(columns, {"impactline.pipeline_hash": pipeline.hash, "impactline.classifier": classifier.name})
+    arrays = [rows["file"], rows["event_id"]] + [pa.array(np.asarray(labels[name]), type=schema.field(name).type)
+                                                for name in classifier.columns]
+    label_table = pa.Table.from_arrays(arrays, schema=schema)
+    if out is not None:
+        write_table_atomic(label_table, out / LABELS_TABLE)
+    for name in classifier.columns:
+        events = events.append_column(schema.field(name), label_table.column(name))
+    return events
+
+
+def _run_record(pipeline: Pipeline, paths: list[Path], command, started_at: datetime,
+                results: list[FileResult]) -> dict[str, Any]:
+    import importlib.metadata as md
+
+    versions = {}
+    for package in ("numpy", "scipy", "pyarrow", "pywavelets", "scikit-learn", "pluggy", "h5py"):
+        try:
+            versions[package] = md.version(package)
+        except md.PackageNotFoundError:
+            versions[package] = None
+    return {
+        "impactline_version": __version__,
+        "pipeline_source": pipeline.source,
+        "pipeline_text": pipeline.text,
+        "pipeline_hash": pipeline.hash,
+        "pipeline_resolved": pipeline.resolved(),
+        "plugins": pipeline.registry.plugin_versions,
+        "packages": versions,
+        "python": sys.version,
+        "platform": platform.platform(),
+        "command": list(command) if command is not None else None,
+        "inputs": [str(p) for p in paths],
+        "started": started_at.isoformat(),
+        "finished": datetime.now(UTC).isoformat(),
+        "files_ok": sum(r.row["status"] == "ok" for r in results),
+        "files_skipped": sum(r.row["status"] == "skipped" for r in results),
+        "files_failed": sum(r.row["status"] == "failed" for r in results),
+    }
