@@ -53,7 +53,7 @@ from .output import (
 from .pipeline import Pipeline, parse_pipeline
 from .stages import Column, Event, EventWindow, FilterInfo
 
-__all__ = ["FileResult", "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
+__all__ = ["EventBranch", "FileResult", "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
 
 NOISE_BLOCK_SAMPLES = 1 << 16
 
@@ -158,6 +158,122 @@ def _check_finite(samples: np.ndarray, first_index: int, path: Path) -> None:
                          sample_index=first_index + bad)
 
 
+class EventBranch:
+    """Filters (optional), detector and measures fed with samples of one recording, chunk by chunk.
+
+    :func:`process_recording` uses one branch; a comparison run feeds several branches from one read.
+
+    Parameters
+    ----------
+    filters, detector, measures
+        Stage instances (fresh for each recording).
+    fs : float
+        Sampling rate, Hz.
+    path : Path
+        The recording (for messages and the ``file`` column).
+    schema : pyarrow.Schema
+        Events schema (:func:`events_schema`).
+    material : Material or None
+        Sizing material (adds ``diameter_m``).
+    chain : FilterInfo, optional
+        Bandwidth of the whole filter chain feeding the detector (default: computed from ``filters``).
+    """
+
+    def __init__(self, filters, detector, measures, fs: float, path: Path, schema: pa.Schema, material=None,
+                 chain: FilterInfo | None = None):
+        self.filters = list(filters)
+        self.detector = detector
+        self.measures = list(measures)
+        self.fs = fs
+        self.path = path
+        self.schema = schema
+        self.material = material
+        try:
+            self.filter_states = [f.start(fs) for f in self.filters]
+            self.detector_state = detector.start(fs)
+        except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
+            raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
+        self.chain = chain if chain is not None else _chain_info(self.filters, fs)
+        contexts = [m.context_samples(fs) for m in self.measures]
+        self.pre = max([c[0] for c in contexts], default=0)
+        self.post = max([c[1] for c in contexts], default=0)
+        self.lookback = int(detector.lookback_samples(fs))
+        self.history = _History()
+        self.noise = _NoiseMeter()
+        self.pending: list[Event] = []
+        self.rows: list[dict[str, Any]] = []
+        self.state = {"last_start": None, "last_index": -1}
+        self.received = 0
+        self.filtered = 0
+
+    def push(self, samples: np.ndarray) -> None:
+        """Feed the next chunk of input samples (A)."""
+        self.received += samples.size
+        for i, filt in enumerate(self.filters):
+            samples, self.filter_states[i] = filt.process(samples, self.filter_states[i])
+        self._push_filtered(samples)
+
+    def finish(self) -> pa.Table:
+        """Drain filters and detector, measure the last events, return the events table."""
+        self._push_filtered(_flush_filters(self.filters, self.filter_states))
+        if self.filtered != self.received:
+            raise ImpactlineError(f"{self.path}: the filters returned {self.filtered} samples for {self.received} "
+                                  "read; a filter broke the stream contract")
+        self._accept(self.detector.finish(self.detector_state))
+        self._measure_ready(True)
+        return table_from_rows(self.rows, self.schema)
+
+    def _push_filtered(self, samples: np.ndarray) -> None:
+        if samples.size == 0:
+            return
+        first = self.filtered
+        self.history.append(samples)
+        self.noise.push(samples)
+        self.filtered += samples.size
+        events, self.detector_state = self.detector.process(samples, first, self.detector_state)
+        self._accept(events)
+        self._measure_ready(False)
+        keep_from = self.filtered - self.lookback - self.pre
+        if self.pending:
+            keep_from = min(keep_from, self.pending[0].start_index - self.pre)
+        self.history.trim(keep_from)
+
+    def _accept(self, events: list[Event]) -> None:
+        name = self.detector.name
+        for event in events:
+            if not (self.state["last_index"] <= event.start_index < event.end_index <= self.filtered):
+                raise ImpactlineError(
+                    f"{self.path}: detector {name!r} broke its contract: event [{event.start_index}, "
+                    f"{event.end_index}) is empty, out of order or beyond the {self.filtered} samples it was given")
+            if event.start_index < self.history.start:
+                raise ImpactlineError(
+                    f"{self.path}: detector {name!r} reported an event starting at sample {event.start_index}, "
+                    f"further back than its declared look-back of {self.lookback} samples")
+            self.state["last_index"] = event.start_index
+            self.pending.append(event)
+
+    def _measure_ready(self, stream_done: bool) -> None:
+        while self.pending and (stream_done or self.pending[0].end_index + self.post <= self.history.end):
+            event = self.pending.pop(0)
+            self.rows.append(_measure_event(event, self.history, self.pre, self.post, self.fs, self.chain,
+                                            self.measures, self.detector.name, str(self.path), len(self.rows),
+                                            self.state, self.material))
+
+
+def _read_checked(recording, chunk_samples: int, path: Path, progress=None):
+    """Yield the recording's chunks as float64, refusing non-finite samples (with their index)."""
+    read = 0
+    for chunk in recording.iter_chunks(chunk_samples):
+        samples = np.asarray(chunk, dtype=np.float64)
+        _check_finite(samples, read, path)
+        read += samples.size
+        yield samples
+        if progress is not None:
+            progress(read, recording.n_samples)
+    if read == 0:
+        raise InputError(path, "recording holds no samples", "check that the acquisition wrote data")
+
+
 def process_recording(pipeline: Pipeline, path: str | Path, *,
                       progress: Callable[[int, int | None], None] | None = None) -> FileResult:
     """Stream one recording through the pipeline.
@@ -186,88 +302,14 @@ def process_recording(pipeline: Pipeline, path: str | Path, *,
     reader = pipeline.build_reader(path)
     recording = reader.open(path)
     fs = float(recording.sample_rate_hz)
-    filters = pipeline.build_filters()
-    detector = pipeline.build_detector()
-    measures = pipeline.build_measures()
-    try:
-        filter_states = [f.start(fs) for f in filters]
-        detector_state = detector.start(fs)
-    except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
-        raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
-    chain = _chain_info(filters, fs)
-    contexts = [m.context_samples(fs) for m in measures]
-    pre = max([c[0] for c in contexts], default=0)
-    post = max([c[1] for c in contexts], default=0)
-    lookback = int(detector.lookback_samples(fs))
-
-    history = _History()
-    noise = _NoiseMeter()
-    pending: list[Event] = []
-    rows: list[dict[str, Any]] = []
-    state = {"last_start": None, "last_index": -1}
     material = pipeline.material()
-    schema = events_schema(pipeline)
-    filtered_count = 0
-    read_count = 0
-
-    def measure_ready(stream_done: bool) -> None:
-        while pending and (stream_done or pending[0].end_index + post <= history.end):
-            event = pending.pop(0)
-            rows.append(_measure_event(event, history, pre, post, fs, chain, measures, detector.name,
-                                       str(path), len(rows), state, material, filtered_count))
-
-    def accept(events: list[Event]) -> None:
-        for event in events:
-            if not (state["last_index"] <= event.start_index < event.end_index <= filtered_count):
-                raise ImpactlineError(
-                    f"{path}: detector {detector.name!r} broke its contract: event "
-                    f"[{event.start_index}, {event.end_index}) is empty, out of order or beyond the "
-                    f"{filtered_count} samples it was given")
-            if event.start_index < history.start:
-                raise ImpactlineError(
-                    f"{path}: detector {detector.name!r} reported an event starting at sample "
-                    f"{event.start_index}, further back than its declared look-back of {lookback} samples")
-            state["last_index"] = event.start_index
-            pending.append(event)
-
-    def push_filtered(samples: np.ndarray) -> None:
-        nonlocal filtered_count, detector_state
-        if samples.size == 0:
-            return
-        first = filtered_count
-        history.append(samples)
-        noise.push(samples)
-        filtered_count += samples.size
-        events, detector_state = detector.process(samples, first, detector_state)
-        accept(events)
-        measure_ready(False)
-        keep_from = filtered_count - lookback - pre
-        if pending:
-            keep_from = min(keep_from, pending[0].start_index - pre)
-        history.trim(keep_from)
-
-    for chunk in recording.iter_chunks(pipeline.chunk_samples):
-        samples = np.asarray(chunk, dtype=np.float64)
-        _check_finite(samples, read_count, path)
-        read_count += samples.size
-        for i, filt in enumerate(filters):
-            samples, filter_states[i] = filt.process(samples, filter_states[i])
-        push_filtered(samples)
-        if progress is not None:
-            progress(read_count, recording.n_samples)
-    if read_count == 0:
-        raise InputError(path, "recording holds no samples", "check that the acquisition wrote data")
-    push_filtered(_flush_filters(filters, filter_states))
-    if filtered_count != read_count:
-        raise ImpactlineError(f"{path}: the filters returned {filtered_count} samples for {read_count} read; "
-                              "a filter broke the stream contract")
-    accept(detector.finish(detector_state))
-    measure_ready(True)
-
-    table = table_from_rows(rows, schema)
-    duration = read_count / fs
-    row = _file_row(path, recording, reader.name, fs, read_count, duration, noise.result(), table, material,
-                    pipeline.hash, time.perf_counter() - started)
+    branch = EventBranch(pipeline.build_filters(), pipeline.build_detector(), pipeline.build_measures(), fs, path,
+                         events_schema(pipeline), material)
+    for samples in _read_checked(recording, pipeline.chunk_samples, path, progress):
+        branch.push(samples)
+    table = branch.finish()
+    row = _file_row(path, recording, reader.name, fs, branch.received, branch.received / fs, branch.noise.result(),
+                    table, material, pipeline.hash, time.perf_counter() - started)
     return FileResult(row=row, events=table)
 
 
@@ -291,8 +333,7 @@ def _flush_filters(filters, states) -> np.ndarray:
 
 
 def _measure_event(event: Event, history: _History, pre: int, post: int, fs: float, chain: FilterInfo,
-                   measures, detector_name: str, file: str, event_id: int, state: dict, material,
-                   stream_end: int) -> dict[str, Any]:
+                   measures, detector_name: str, file: str, event_id: int, state: dict, material) -> dict[str, Any]:
     window_start = max(history.start, event.start_index - pre)
     window_end = min(history.end, event.end_index + post)
     signal = history.get(window_start, window_end)
