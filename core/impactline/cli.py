@@ -71,10 +71,10 @@ class Progress:
 # ------------------------------------------------------------------------------------------------ commands
 def _cmd_run(args: argparse.Namespace) -> int:
     from .pipeline import load_pipeline
-    from .runner import expand_inputs, run
+    from .runner import expand_inputs, reader_extensions, run
 
     pipeline = load_pipeline(args.pipeline)
-    paths = expand_inputs(args.inputs)
+    paths = expand_inputs(args.inputs, reader_extensions(pipeline))
     if not paths:
         print(f"impactline: no input file matches {' '.join(args.inputs)}", file=sys.stderr)
         return EXIT_NOTHING

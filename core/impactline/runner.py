@@ -122,7 +122,7 @@ class _History:
 
 
 class _NoiseMeter:
-    """Robust rms noise of a stream: 1.4826 x MAD in fixed absolute blocks, median over blocks.
+    """Robust rms noise of a stream: 1.4826 x MAD in fixed absolute blocks (every 8th sample), median over blocks.
 
     The MAD is about the block median, so events (a small fraction of samples) barely move it; blocks
     start at absolute multiples of the block length, so chunking cannot change the result.
@@ -137,7 +137,8 @@ class _NoiseMeter:
         data = np.concatenate([self.pending, samples]) if self.pending.size else samples
         whole = (data.size // self.block) * self.block
         if whole:
-            blocks = data[:whole].reshape(-1, self.block)
+            # Every 8th sample: the MAD of 8192 samples is within ~1 % of the full block's, at 1/8 the cost.
+            blocks = data[:whole].reshape(-1, self.block)[:, ::8]
             median = np.median(blocks, axis=1, keepdims=True)
             self.estimates.extend((1.4826 * np.median(np.abs(blocks - median), axis=1)).tolist())
         self.pending = data[whole:].copy()
@@ -418,15 +419,24 @@ def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int
 
 
 # ------------------------------------------------------------------------------------------------ many files
-def expand_inputs(inputs: Iterable[str | Path]) -> list[Path]:
-    """Expand globs and folders into a sorted, de-duplicated list of files (sidecars excluded)."""
+def expand_inputs(inputs: Iterable[str | Path], extensions: Iterable[str] | None = None) -> list[Path]:
+    """Expand globs and folders into a sorted, de-duplicated list of files (sidecars excluded).
+
+    Files named explicitly are always kept (so a bad one is reported); files found in a folder are kept only
+    when their extension is in ``extensions`` (default: every installed reader's extensions).
+    """
+    if extensions is None:
+        from .registry import default_registry
+
+        extensions = {ext for entry in default_registry().stages("reader") for ext in entry.cls.extensions}
+    extensions = set(extensions)
     found: list[Path] = []
     for item in inputs:
         text = str(item)
         if any(ch in text for ch in "*?["):
             matches = [Path(p) for p in sorted(glob(text, recursive=True))]
         elif Path(text).is_dir():
-            matches = sorted(p for p in Path(text).iterdir() if p.is_file())
+            matches = sorted(p for p in Path(text).iterdir() if p.is_file() and p.suffix.lower() in extensions)
         else:
             matches = [Path(text)]
         for match in matches:
@@ -437,6 +447,12 @@ def expand_inputs(inputs: Iterable[str | Path]) -> list[Path]:
     for p in found:
         unique.setdefault(str(p.resolve()), p)
     return list(unique.values())
+
+
+def reader_extensions(pipeline: Pipeline) -> set[str]:
+    if pipeline.reader_spec.name != "auto":
+        return set(pipeline.registry.get("reader", pipeline.reader_spec.name).cls.extensions)
+    return {ext for entry in pipeline.registry.stages("reader") for ext in entry.cls.extensions}
 
 
 def _failed_row(path: Path, error: str, pipeline_hash: str, seconds: float) -> dict[str, Any]:
@@ -555,7 +571,7 @@ def run(pipeline: Pipeline, inputs: Sequence[str | Path], out_dir: str | Path | 
     RunResult
     """
     started_at = datetime.now(UTC)
-    paths = expand_inputs(inputs)
+    paths = expand_inputs(inputs, reader_extensions(pipeline))
     out = Path(out_dir) if out_dir is not None else None
     if out is not None:
         prepare_run_folder(out, pipeline, overwrite)

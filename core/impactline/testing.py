@@ -150,9 +150,11 @@ def check_measure_robust(measure: FeatureExtractor, fs: float = 250e3) -> None:
     pre, post = measure.context_samples(fs)
     cases = []
     for length, polarity in ((1, 1), (2, -1), (3, 1), (50, 1), (50, -1), (2000, 1)):
-        body = polarity * 10e-12 * np.hanning(length + 2)[1:-1] if length > 2 else polarity * 10e-12 * np.ones(length)
+        envelope = np.hanning(length + 2)[1:-1] if length > 2 else np.ones(length)
+        body = polarity * 10e-12 * envelope
         for clip_pre, clip_post in ((pre, post), (0, post), (pre, 0), (0, 0)):
-            signal = np.concatenate([1e-12 * rng.standard_normal(clip_pre), body, 1e-12 * rng.standard_normal(clip_post)])
+            noise_pre, noise_post = 1e-12 * rng.standard_normal(clip_pre), 1e-12 * rng.standard_normal(clip_post)
+            signal = np.concatenate([noise_pre, body, noise_post])
             cases.append((signal, clip_pre, clip_pre + length, polarity))
     flat = np.zeros(pre + 20 + post)
     cases.append((flat, pre, pre + 20, 1))

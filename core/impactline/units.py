@@ -26,6 +26,8 @@ _UNIT_ALIASES: dict[str, dict[str, float]] = {
     "mol/m^3": {"M": 1000.0, "mol/L": 1000.0},  # concentrations may be written in molar (mol/L)
     "Pa s": {"P": 0.1},
     "K": {},
+    "kg/mol": {"g/mol": 1e-3},
+    "kg/m^3": {"g/cm^3": 1e3, "g/mL": 1e3, "g/L": 1.0},
 }
 
 _NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
