@@ -22,7 +22,7 @@ from .units import format_quantity
 EXIT_OK, EXIT_FILES_FAILED, EXIT_USAGE, EXIT_NOTHING = 0, 1, 2, 3
 
 #: Modules that add their own sub-commands through ``register_cli(subparsers)``.
-_TOOL_MODULES = ("impactline.simulate", "impactline.noise")
+_TOOL_MODULES = ("impactline.simulate", "impactline.noise", "impactline.compare", "impactline.shapes_cli")
 
 
 # ------------------------------------------------------------------------------------------------ progress
@@ -245,11 +245,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=_cmd_demo)
 
     for module_name in _TOOL_MODULES:
-        try:
-            module = importlib.import_module(module_name)
-        except ImportError:
-            continue
-        module.register_cli(sub)
+        importlib.import_module(module_name).register_cli(sub)
     return parser
 
 
