@@ -158,7 +158,7 @@ def _cmd_plugins(args: argparse.Namespace) -> int:
             if args.brief:
                 continue
             for key, param in entry.cls.params.items():
-                default = "from file" if param.default is None else param.default
+                default = "(not set)" if param.default is None else param.default
                 unit = f" {param.unit}" if param.unit and param.default is not None else ""
                 print(f"      {key:18s} = {default}{unit}  ({param.describe_allowed()}) {param.doc}")
             for key, column in getattr(entry.cls, "columns", {}).items():
