@@ -72,6 +72,7 @@ FILE_COLUMNS: dict[str, Column] = {
     "event_rate_low_per_s": Column("float64", "1/s", "lower bound of the 95 % Poisson interval of the rate"),
     "event_rate_high_per_s": Column("float64", "1/s", "upper bound of the 95 % Poisson interval of the rate"),
     "median_diameter_m": Column("float64", "m", "median equivalent diameter of anodic events (with sizing)"),
+    "reader_metadata": Column("string", "", "JSON: what the reader found (dtype, gain, where each setting came from)"),
     "status": Column("string", "", "ok, failed, or skipped (done by an earlier run with the same pipeline)"),
     "error": Column("string", "", "what went wrong (failed files)"),
     "seconds": Column("float64", "s", "processing time"),

@@ -189,12 +189,14 @@ def choose_reader(registry: PluginRegistry, path: Path) -> str:
                          "check the path and the file's permissions") from None
     if not head:
         raise InputError(path, "file is empty (0 bytes)", "check that the acquisition finished writing it")
-    if len(by_extension) == 1:
-        return by_extension[0].name
-    candidates = by_extension or readers
-    sniffed = [cls for cls in candidates if _safe_sniff(cls, path, head)]
+    sniffed = [cls for cls in (by_extension or readers) if _safe_sniff(cls, path, head)]
     if sniffed:
         return sniffed[0].name
+    if len(by_extension) == 1:
+        # A format with a magic number (HDF5 named .bin, say) is recognised by content even under a
+        # misleading extension; otherwise the extension decides.
+        elsewhere = [cls for cls in readers if cls not in by_extension and _safe_sniff(cls, path, head)]
+        return (elsewhere or by_extension)[0].name
     if by_extension:
         return by_extension[0].name
     known = sorted({ext for cls in readers for ext in cls.extensions})

@@ -408,6 +408,7 @@ def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int
         "event_rate_low_per_s": float(low),
         "event_rate_high_per_s": float(high),
         "median_diameter_m": median_diameter,
+        "reader_metadata": json.dumps(recording.metadata, sort_keys=True, default=str),
         "status": "ok",
         "error": None,
         "seconds": seconds,
