@@ -291,14 +291,14 @@ def parse_pipeline(text: str, source: str = "<pipeline>", base_dir: Path | None 
     reader_spec = _stage_spec(data.get("reader", {"use": "auto"}), "reader", "reader", registry, problem,
                               default_use="auto")
     filter_specs = [_stage_spec(item, "filter", f"filter[{i}]", registry, problem)
-                    for i, item in enumerate(_array(data, "filter", problem))]
+                    for i, item in enumerate(stage_array(data, "filter", problem))]
     if "detector" not in data:
         problem("[detector]", "missing section; add e.g. [detector] use = \"threshold\"")
         detector_spec = None
     else:
         detector_spec = _stage_spec(data["detector"], "detector", "detector", registry, problem)
     measure_specs = [_stage_spec(item, "measure", f"measure[{i}]", registry, problem)
-                     for i, item in enumerate(_array(data, "measure", problem))]
+                     for i, item in enumerate(stage_array(data, "measure", problem))]
     classifier_spec = None
     if "classifier" in data:
         classifier_spec = _stage_spec(data["classifier"], "classifier", "classifier", registry, problem)
@@ -353,7 +353,7 @@ def _section(data: dict, key: str, problem) -> dict:
     return value
 
 
-def _array(data: dict, key: str, problem) -> list[dict]:
+def stage_array(data: dict, key: str, problem) -> list[dict]:
     value = data.get(key, [])
     if isinstance(value, dict):
         problem(f"[{key}]", f"write [[{key}]] (double brackets: an ordered list of stages), not [{key}]")

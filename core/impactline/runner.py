@@ -53,7 +53,8 @@ from .output import (
 from .pipeline import Pipeline, parse_pipeline
 from .stages import Column, Event, EventWindow, FilterInfo
 
-__all__ = ["EventBranch", "FileResult", "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
+__all__ = ["EventBranch", "NoiseMeter", "chain_info", "describe_error", "read_checked", "FileResult", "RunResult",
+           "process_recording", "run", "expand_inputs", "events_schema"]
 
 NOISE_BLOCK_SAMPLES = 1 << 16
 
@@ -121,7 +122,7 @@ class _History:
         return self.data[start - self.start:end - self.start]
 
 
-class _NoiseMeter:
+class NoiseMeter:
     """Robust rms noise of a stream: 1.4826 x MAD in fixed absolute blocks (every 8th sample), median over blocks.
 
     The MAD is about the block median, so events (a small fraction of samples) barely move it; blocks
@@ -178,10 +179,12 @@ class EventBranch:
         Sizing material (adds ``diameter_m``).
     chain : FilterInfo, optional
         Bandwidth of the whole filter chain feeding the detector (default: computed from ``filters``).
+    noise : NoiseMeter, optional
+        File-level noise meter (default: the branch's own, fed with its filtered samples).
     """
 
     def __init__(self, filters, detector, measures, fs: float, path: Path, schema: pa.Schema, material=None,
-                 chain: FilterInfo | None = None):
+                 chain: FilterInfo | None = None, noise: NoiseMeter | None = None):
         self.filters = list(filters)
         self.detector = detector
         self.measures = list(measures)
@@ -194,13 +197,14 @@ class EventBranch:
             self.detector_state = detector.start(fs)
         except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
             raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
-        self.chain = chain if chain is not None else _chain_info(self.filters, fs)
+        self.chain = chain if chain is not None else chain_info(self.filters, fs)
         contexts = [m.context_samples(fs) for m in self.measures]
         self.pre = max([c[0] for c in contexts], default=0)
         self.post = max([c[1] for c in contexts], default=0)
         self.lookback = int(detector.lookback_samples(fs))
         self.history = _History()
-        self.noise = _NoiseMeter()
+        # A comparison passes one meter shared by branches fed the very same samples.
+        self.noise = noise if noise is not None else NoiseMeter()
         self.pending: list[Event] = []
         self.rows: list[dict[str, Any]] = []
         self.state = {"last_start": None, "last_index": -1}
@@ -261,7 +265,7 @@ class EventBranch:
                                             self.state, self.material))
 
 
-def _read_checked(recording, chunk_samples: int, path: Path, progress=None):
+def read_checked(recording, chunk_samples: int, path: Path, progress=None):
     """Yield the recording's chunks as float64, refusing non-finite samples (with their index)."""
     read = 0
     for chunk in recording.iter_chunks(chunk_samples):
@@ -306,7 +310,7 @@ def process_recording(pipeline: Pipeline, path: str | Path, *,
     material = pipeline.material()
     branch = EventBranch(pipeline.build_filters(), pipeline.build_detector(), pipeline.build_measures(), fs, path,
                          events_schema(pipeline), material)
-    for samples in _read_checked(recording, pipeline.chunk_samples, path, progress):
+    for samples in read_checked(recording, pipeline.chunk_samples, path, progress):
         branch.push(samples)
     table = branch.finish()
     row = _file_row(path, recording, reader.name, fs, branch.received, branch.received / fs, branch.noise.result(),
@@ -314,7 +318,7 @@ def process_recording(pipeline: Pipeline, path: str | Path, *,
     return FileResult(row=row, events=table)
 
 
-def _chain_info(filters, fs: float) -> FilterInfo:
+def chain_info(filters, fs: float) -> FilterInfo:
     if not filters:
         return FilterInfo(cutoff_hz=fs / 2, rise_time_s=None, delay_s=0.0)
     from .bandwidth import cascade_info
@@ -462,7 +466,7 @@ def _failed_row(path: Path, error: str, pipeline_hash: str, seconds: float) -> d
     return row
 
 
-def _describe_error(exc: BaseException) -> str:
+def describe_error(exc: BaseException) -> str:
     if isinstance(exc, (ImpactlineError, OSError, ValueError)):
         return str(exc)
     return f"{type(exc).__name__}: {exc}\n" + "".join(traceback.format_tb(exc.__traceback__)[-3:])
@@ -482,7 +486,7 @@ def _process_and_write(pipeline: Pipeline, path: Path, out_dir: Path | None,
     try:
         result = process_recording(pipeline, path, progress=progress)
     except Exception as exc:  # recorded in files.parquet; one bad file never stops the batch
-        return FileResult(row=_failed_row(path, _describe_error(exc), pipeline.hash, time.perf_counter() - started))
+        return FileResult(row=_failed_row(path, describe_error(exc), pipeline.hash, time.perf_counter() - started))
     if out_dir is not None:
         name = part_name(path)
         result.row["part"] = name
@@ -602,7 +606,7 @@ def run(pipeline: Pipeline, inputs: Sequence[str | Path], out_dir: str | Path | 
                 try:
                     result = future.result()
                 except Exception as exc:  # a worker died (e.g. out of memory): record, keep going
-                    result = FileResult(row=_failed_row(futures[future], _describe_error(exc), pipeline.hash, 0.0))
+                    result = FileResult(row=_failed_row(futures[future], describe_error(exc), pipeline.hash, 0.0))
                 results.append(result)
                 if on_file:
                     on_file(result, len(results), len(paths))
