@@ -32,6 +32,7 @@ import numpy as np
 from scipy.optimize import brentq
 
 from .stages import Filter, FilterInfo
+from .testing import run_filter
 
 __all__ = [
     "CascadeReport",
@@ -136,7 +137,7 @@ def rise_time_10_90(y: np.ndarray, sample_rate_hz: float) -> float | None:
     u = (y - start) / (end - start)
     t10 = _first_crossing(u, 0.1)
     t90 = _first_crossing(u, 0.9)
-    return (t90 - t10) / sample_rate_hz
+    return float((t90 - t10) / sample_rate_hz)
 
 
 def _first_crossing(u: np.ndarray, level: float) -> float:
@@ -168,14 +169,7 @@ def run_filters(filters: Sequence[Filter], x: np.ndarray, sample_rate_hz: float,
     """
     y = np.asarray(x, dtype=np.float64)
     for stage in filters:
-        state = stage.start(sample_rate_hz)
-        step = len(y) if chunk_samples is None else int(chunk_samples)
-        parts = []
-        for lo in range(0, len(y), max(step, 1)):
-            out, state = stage.process(y[lo:lo + step], state)
-            parts.append(out)
-        parts.append(stage.finish(state))
-        y = np.concatenate(parts) if parts else np.empty(0)
+        y = run_filter(stage, y, sample_rate_hz, chunk_samples)
     return y
 
 
@@ -282,7 +276,8 @@ def explain_cascade(filters: Sequence[Filter], sample_rate_hz: float) -> Cascade
     cutoff = minus_3db_frequency(magnitude_squared, sample_rate_hz)
     _, y = step_response(lowpass, sample_rate_hz, settle_hz=cutoff)
     rise = rise_time_10_90(y, sample_rate_hz)
-    return CascadeReport(FilterInfo(cutoff, rise, delay), [s.name or type(s).__name__ for s in lowpass], notes)
+    names = [s.name or type(s).__name__ for s in lowpass]
+    return CascadeReport(FilterInfo(cutoff, rise, delay), names, notes)
 
 
 def cascade_info(filters: Sequence[Filter], sample_rate_hz: float) -> FilterInfo:
