@@ -273,3 +273,35 @@ def test_local_plugin_file_named_in_a_pipeline_runs(tmp_path):
     result = run(load_pipeline(pipeline), [tmp_path / "batch.culab"])
     assert result.files.column("reader").to_pylist() == ["culab"]
     assert result.events.num_rows == len(starts)
+
+
+def test_collision_rate_is_set_beside_the_diffusion_limited_prediction(tmp_path):
+    x, starts = _recording(n=250_000)
+    path = _write_npy(tmp_path / "a.npy", x)
+    text = PIPELINE + ('\n[collision_rate]\nelectrode_radius = "5 um"\nconcentration = "10 pM"\n'
+                       'particle_diameter = "100 nm"\n')
+    row = run(parse_pipeline(text), [path]).files.to_pylist()[0]
+    # REFERENCES.md: f = 4 D C_p r N_A; 5 um disc, 10 pM particles of 50 nm radius at 25 C -> 0.591 per second
+    # (Saito 1968 disc flux applied per particle; Stokes-Einstein with IAPWS 2008 water viscosity).
+    assert row["predicted_rate_per_s"] == pytest.approx(0.591, rel=2e-3)
+    assert row["diffusion_coefficient_m2_per_s"] == pytest.approx(4.907e-12, rel=1e-3)
+    assert row["rate_ratio"] == pytest.approx(row["event_rate_per_s"] / row["predicted_rate_per_s"])
+    assert row["event_rate_per_s"] == pytest.approx(len(starts) / (x.size / FS))
+
+
+def test_collision_rate_section_needs_radius_and_concentration():
+    from impactline.errors import PipelineError
+
+    with pytest.raises(PipelineError, match="collision_rate.concentration"):
+        parse_pipeline(PIPELINE + '\n[collision_rate]\nelectrode_radius = "5 um"\n')
+
+
+def test_causal_filter_delay_is_subtracted_from_event_times(tmp_path):
+    x, starts = _recording(n=200_000)
+    path = _write_npy(tmp_path / "a.npy", x)
+    causal = PIPELINE.replace('cutoff = "25 kHz"', 'cutoff = "25 kHz"\nmode = "causal"')
+    result = run(parse_pipeline(causal), [path])
+    row = result.files.to_pylist()[0]
+    assert row["filter_delay_s"] > 0
+    onsets = np.asarray(result.events.column("start_index").to_pylist())
+    assert np.max(np.abs(onsets - starts)) <= 6

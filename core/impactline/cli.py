@@ -197,7 +197,7 @@ def _demo_truth_table(result, recordings: Path) -> str:
     """Set found events beside the simulator's ground truth, batch by batch."""
     import pyarrow.parquet as pq
 
-    lines = ["batch            true events  found  true median d   found median d"]
+    lines = ["batch            true events  found  true median d   found median d   rate/predicted"]
     for row in result.files.to_pylist():
         truth_path = recordings / (Path(row["file"]).stem + ".truth.parquet")
         if not truth_path.exists() or row["status"] == "failed":
@@ -207,8 +207,13 @@ def _demo_truth_table(result, recordings: Path) -> str:
         found_d = row.get("median_diameter_m")
         lines.append(f"{Path(row['file']).stem:16s} {truth.num_rows:11d}  {row['n_events']:5d}   "
                      f"{format_quantity(float(np.median(true_d)), 'm'):>12s}   "
-                     f"{format_quantity(found_d, 'm') if found_d is not None else 'n/a':>12s}")
+                     f"{format_quantity(found_d, 'm') if found_d is not None else 'n/a':>12s}   "
+                     f"{_ratio_text(row.get('rate_ratio'))}")
     return "\n".join(lines)
+
+
+def _ratio_text(ratio) -> str:
+    return f"{ratio:14.2f}" if ratio is not None and np.isfinite(ratio) else f"{'n/a':>14s}"
 
 
 # ------------------------------------------------------------------------------------------------ parser

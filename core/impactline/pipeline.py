@@ -34,6 +34,12 @@ Syntax
     electrons = 2                    # optional override of electrons per atom
     # molar_mass = "63.546 g/mol"; density = "8.96 g/cm^3"
 
+    [collision_rate]                 # optional: measured rate vs the diffusion-limited prediction
+    electrode_radius = "5 um"        # disc microelectrode
+    concentration = "150 pM"         # particles
+    temperature = "298.15 K"         # default 25 C; viscosity defaults to water at that temperature
+    # particle_diameter = "50 nm"    # default: the file's median measured diameter ([sizing] needed)
+
 Nothing in a pipeline file can run code except the local plugin files it names explicitly.
 """
 
@@ -55,12 +61,24 @@ from .stages import Classifier, Detector, FeatureExtractor, Filter, Reader
 __all__ = ["Pipeline", "StageSpec", "load_pipeline", "parse_pipeline", "check_pipeline"]
 
 DEFAULT_CHUNK_SAMPLES = 1 << 20
-_TOP_LEVEL = ("pipeline", "plugins", "reader", "filter", "detector", "measure", "classifier", "sizing")
+_TOP_LEVEL = ("pipeline", "plugins", "reader", "filter", "detector", "measure", "classifier", "sizing",
+              "collision_rate")
 _PIPELINE_KEYS = {
     "name": Param("", kind=str, doc="name shown in summaries"),
     "description": Param("", kind=str, doc="free text"),
     "chunk_samples": Param(DEFAULT_CHUNK_SAMPLES, kind=int, low=256, high=1 << 28,
                            doc="samples per streaming chunk"),
+}
+_RATE_KEYS = {
+    "electrode_radius": Param(None, unit="m", low=0, low_inclusive=False, doc="disc microelectrode radius"),
+    "concentration": Param(None, unit="mol/m^3", low=0, low_inclusive=False,
+                           doc="particle concentration (\"10 pM\" is accepted)"),
+    "temperature": Param(298.15, unit="K", low=250, high=400, doc="solution temperature"),
+    "viscosity": Param(None, unit="Pa s", low=0, low_inclusive=False,
+                       doc="solution viscosity; default: water at the temperature (IAPWS 2008)"),
+    "particle_diameter": Param(None, unit="m", low=0, low_inclusive=False,
+                               doc="particle diameter for the diffusion coefficient; default: the file's median "
+                                   "measured diameter (needs [sizing])"),
 }
 _SIZING_KEYS = {
     "material": Param(None, kind=str, doc="material name (see impactline.physics.MATERIALS)"),
@@ -98,6 +116,7 @@ class Pipeline:
     measure_specs: list[StageSpec]
     classifier_spec: StageSpec | None
     sizing: dict[str, Any] | None
+    collision_rate: dict[str, Any] | None = None
     local_plugins: list[Path] = field(default_factory=list)
 
     # -------------------------------------------------------------------- stage instances
@@ -163,6 +182,7 @@ class Pipeline:
             "measure": [stage("measure", s) for s in self.measure_specs],
             "classifier": stage("classifier", self.classifier_spec) if self.classifier_spec else None,
             "sizing": self.sizing,
+            "collision_rate": self.collision_rate,
             "local_plugins": {str(p): self.registry.local_files.get(str(p.resolve()), "") for p in
                               self.local_plugins},
         }
@@ -310,13 +330,27 @@ def parse_pipeline(text: str, source: str = "<pipeline>", base_dir: Path | None 
             sizing = resolve_params("[sizing]", _SIZING_KEYS, raw)
         except ParameterError as exc:
             problem(f"sizing.{exc.key}", exc.reason)
+    collision_rate = None
+    if "collision_rate" in data:
+        raw = _section(data, "collision_rate", problem)
+        try:
+            collision_rate = resolve_params("[collision_rate]", _RATE_KEYS, raw)
+        except ParameterError as exc:
+            problem(f"collision_rate.{exc.key}", exc.reason)
+        else:
+            for key in ("electrode_radius", "concentration"):
+                if collision_rate[key] is None:
+                    problem(f"collision_rate.{key}", "required to predict the diffusion-limited rate")
+            if collision_rate["particle_diameter"] is None and "sizing" not in data:
+                problem("collision_rate.particle_diameter",
+                        "give the particle diameter, or add a [sizing] section so the measured median is used")
     if problems:
         raise PipelineError(problems)
     pipeline = Pipeline(
         text=text, source=source, registry=registry, name=meta_values["name"] or Path(source).stem,
         chunk_samples=meta_values["chunk_samples"], reader_spec=reader_spec, filter_specs=filter_specs,
         detector_spec=detector_spec, measure_specs=measure_specs, classifier_spec=classifier_spec,
-        sizing=sizing, local_plugins=local_plugins,
+        sizing=sizing, collision_rate=collision_rate, local_plugins=local_plugins,
     )
     if sizing is not None:
         try:

@@ -315,6 +315,9 @@ def process_recording(pipeline: Pipeline, path: str | Path, *,
     table = branch.finish()
     row = _file_row(path, recording, reader.name, fs, branch.received, branch.received / fs, branch.noise.result(),
                     table, material, pipeline.hash, time.perf_counter() - started)
+    row.update(filter_cutoff_hz=branch.chain.cutoff_hz, filter_rise_time_s=branch.chain.rise_time_s,
+               filter_delay_s=branch.chain.delay_s)
+    row.update(predicted_collision_rate(pipeline.collision_rate, row["median_diameter_m"], row["event_rate_per_s"]))
     return FileResult(row=row, events=table)
 
 
@@ -383,6 +386,26 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
 
         row["diameter_m"] = float(diameter_from_charge(row["charge_C"], material))
     return row
+
+
+def predicted_collision_rate(settings: dict[str, Any] | None, median_diameter_m: float,
+                             measured_rate_per_s: float) -> dict[str, float]:
+    """Diffusion-limited collision rate at a disc for a ``[collision_rate]`` section, and measured/predicted.
+
+    Uses the given particle diameter, else the file's median measured diameter; NaN when neither is known.
+    """
+    if not settings:
+        return {}
+    from .physics import collision_frequency_disc, stokes_einstein_diffusion
+
+    diameter = settings.get("particle_diameter") or median_diameter_m
+    if diameter is None or not np.isfinite(diameter):
+        return {"diffusion_coefficient_m2_per_s": float("nan"), "predicted_rate_per_s": float("nan"),
+                "rate_ratio": float("nan")}
+    diffusion = float(stokes_einstein_diffusion(diameter / 2.0, settings["temperature"], settings.get("viscosity")))
+    predicted = float(collision_frequency_disc(diffusion, settings["concentration"], settings["electrode_radius"]))
+    return {"diffusion_coefficient_m2_per_s": diffusion, "predicted_rate_per_s": predicted,
+            "rate_ratio": measured_rate_per_s / predicted}
 
 
 def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int, duration: float,

@@ -149,7 +149,7 @@ class Reader(Stage):
     params: ClassVar[dict[str, Param]] = {
         "sample_rate": Param(None, unit="Hz", low=0, low_inclusive=False,
                              doc="sampling rate; default: from the file or its sidecar"),
-        "gain": Param(None, unit="A", doc="amperes per raw count; default: file or sidecar (required for integer data)"),
+        "gain": Param(None, unit="A", doc="amperes per raw count; default: file or sidecar (integer data needs one)"),
         "offset": Param(None, unit="A", doc="added after scaling by gain; default: sidecar or 0"),
     }
 
