@@ -21,7 +21,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import integrate, signal
+from scipy import signal
 
 __all__ = [
     "BesselShape",
@@ -45,7 +45,7 @@ def _check_order(order: int) -> int:
     return int(order)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _prototype(order: int) -> tuple[np.ndarray, np.ndarray]:
     """Numerator and denominator (s in rad/s) of the prototype with its -3 dB point at 1 rad/s."""
     b, a = signal.bessel(order, 1.0, btype="low", analog=True, norm="mag")
@@ -75,8 +75,30 @@ def bessel_power_response(freqs_hz: np.ndarray, cutoff_hz: float, order: int) ->
 
 
 def _power_response_normalised(x: np.ndarray, b: np.ndarray, a: np.ndarray) -> np.ndarray:
-    s = 1j * x
-    return np.abs(np.polyval(b, s)) ** 2 / np.abs(np.polyval(a, s)) ** 2
+    return _squared_numerator(tuple(b)) / np.polyval(_squared_denominator(tuple(a)), np.square(x))
+
+
+@functools.cache
+def _squared_denominator(a: tuple[float, ...]) -> np.ndarray:
+    """Coefficients (in x^2) of |a(jx)|^2, a real polynomial: evaluating it is ~4x cheaper than complex."""
+    poly = np.asarray(a, float)
+    n = len(poly) - 1
+    # a(jx) = sum_k a_k (jx)^(n-k); |a(jx)|^2 = a(jx) a(-jx) = sum over even powers of x.
+    coeffs_s = np.polymul(poly, poly * np.array([(-1.0) ** (n - k) for k in range(n + 1)]))
+    # coeffs_s is in s^m with s = jx (only even m survive); s^(2m) = (-1)^m x^(2m).
+    degree = len(coeffs_s) - 1
+    out = []
+    for k, c in enumerate(coeffs_s):
+        power = degree - k
+        if power % 2 == 0:
+            out.append(c * (-1.0) ** (power // 2))
+    return np.array(out)
+
+
+@functools.cache
+def _squared_numerator(b: tuple[float, ...]) -> float:
+    """|b|^2 of the constant numerator of a Bessel low-pass."""
+    return float(np.abs(np.polyval(np.asarray(b, float), 0.0)) ** 2)
 
 
 @dataclass(frozen=True)
@@ -110,7 +132,7 @@ class BesselShape:
     step: np.ndarray
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def bessel_step_shape(order: int) -> BesselShape:
     """Step response figures of the ``order``-pole Bessel prototype (cached).
 
@@ -127,9 +149,12 @@ def bessel_step_shape(order: int) -> BesselShape:
     # Prototype with fc = 1 Hz, so the time axis is directly tau = t * fc.
     b_hz, a_hz = signal.bessel(order, 2.0 * math.pi, btype="low", analog=True, norm="mag")
     tau = np.linspace(0.0, _TAU_END, _TAU_STEPS)
-    system = signal.lti(b_hz, a_hz)
-    _, step = signal.step(system, T=tau)
-    _, impulse = signal.impulse(system, T=tau)
+    # Partial fractions (the poles of a Bessel filter are simple): h(t) = sum r_i exp(p_i t), and the step
+    # response from H(s)/s, which adds the residue at s = 0 (the final value 1).
+    r_imp, p_imp, _ = signal.residue(b_hz, a_hz)
+    r_step, p_step, _ = signal.residue(b_hz, np.polymul(a_hz, [1.0, 0.0]))
+    impulse = np.real(np.exp(np.outer(tau, p_imp)) @ r_imp)
+    step = np.real(np.exp(np.outer(tau, p_step)) @ r_step)
     peak_index = int(np.argmax(step))
     rising = step[: peak_index + 1]
     t10 = float(np.interp(0.1, rising, tau[: peak_index + 1]))
@@ -179,29 +204,47 @@ def pulse_peak_fraction(duration_s: float | np.ndarray, cutoff_hz: float, order:
     return out
 
 
+# Composite Gauss-Legendre rule in u = ln x: the integrand x^(p+1) |H(x)|^2 is smooth (analytic) in u, so
+# 16 panels per decade of 10 nodes each reach ~1e-12 relative accuracy (checked against scipy.integrate.quad
+# in the tests) at a fraction of quad's cost, which matters in the cutoff search.
+_GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(10)
+_PANELS_PER_DECADE = 16
+# Above this x the response is within 1e-9 of its asymptote b0^2 / x^(2n) and the tail is integrated exactly.
+_TAIL_X = 1e4
+
+
 def _normalised_integral(order: int, power: int, x_lo: float, x_hi: float) -> float:
     """Integral of x^power |H(x)|^2 dx for the prototype with cutoff 1, from x_lo to x_hi."""
     b, a = _prototype(order)
-
-    def integrand(x: float) -> float:
-        return x ** power * float(_power_response_normalised(np.asarray(x), b, a))
-
     if power < 0 and x_lo <= 0:
         raise ValueError("a 1/f term needs a positive lower frequency limit")
     if power + 1 - 2 * order >= 0 and not math.isfinite(x_hi):
         raise ValueError(
             f"f^{power} noise through a {order}-pole filter does not converge without an upper frequency limit"
         )
-    # Split at the cutoff and at decades so quad sees the corner and both tails.
-    points = [x_lo]
-    for edge in (1e-6, 1e-4, 1e-2, 1.0, 10.0, 100.0):
-        if x_lo < edge < x_hi:
-            points.append(edge)
-    points.append(x_hi)
+    if x_hi <= x_lo:
+        return 0.0
     total = 0.0
-    for lo, hi in zip(points[:-1], points[1:], strict=True):
-        value, _ = integrate.quad(integrand, lo, hi, limit=200, epsabs=0.0, epsrel=1e-10)
-        total += value
+    if x_lo <= 0:
+        # From 0 to a tiny x the response is 1: the integral of x^p is x^(p+1) / (p+1) (p >= 0 here).
+        x_lo = 1e-9
+        total += x_lo ** (power + 1) / (power + 1)
+    upper = min(x_hi, _TAIL_X)
+    if upper > x_lo:
+        u_lo, u_hi = math.log(x_lo), math.log(upper)
+        panels = max(1, int(math.ceil((u_hi - u_lo) / math.log(10.0) * _PANELS_PER_DECADE)))
+        edges = np.linspace(u_lo, u_hi, panels + 1)
+        half = 0.5 * np.diff(edges)
+        mid = 0.5 * (edges[1:] + edges[:-1])
+        u = (mid[:, None] + half[:, None] * _GL_NODES[None, :]).ravel()
+        x = np.exp(u)
+        values = x ** (power + 1) * _power_response_normalised(x, b, a)
+        total += float(np.sum(values.reshape(panels, -1) * _GL_WEIGHTS[None, :] * half[:, None]))
+    if x_hi > _TAIL_X:
+        lead = (b[-1] / a[0]) ** 2  # |H|^2 -> (b0 / a_n)^2 x^(-2n) for large x
+        exponent = power - 2 * order + 1
+        top = 0.0 if not math.isfinite(x_hi) else x_hi ** exponent
+        total += lead * (top - _TAIL_X ** exponent) / exponent
     return total
 
 
