@@ -226,6 +226,13 @@ class EventBranch:
                                   "read; a filter broke the stream contract")
         self._accept(self.detector.finish(self.detector_state))
         self._measure_ready(True)
+        if self.material is not None and self.rows:
+            from .physics import diameter_from_charge
+
+            # One vectorised call for the file rather than one per event.
+            charges = np.array([row["charge_C"] for row in self.rows])
+            for row, diameter in zip(self.rows, diameter_from_charge(charges, self.material), strict=True):
+                row["diameter_m"] = float(diameter)
         return table_from_rows(self.rows, self.schema)
 
     def _push_filtered(self, samples: np.ndarray) -> None:
@@ -381,10 +388,6 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
             raise ImpactlineError(f"measure {measure.name!r} did not return {sorted(missing)} for event "
                                   f"{event_id} of {file}; a measure must return every declared column")
         row.update({k: values[k] for k in measure.columns})
-    if material is not None:
-        from .physics import diameter_from_charge
-
-        row["diameter_m"] = float(diameter_from_charge(row["charge_C"], material))
     return row
 
 

@@ -94,12 +94,15 @@ def timed(function, *args) -> tuple[float, object]:
     return time.perf_counter() - started, value
 
 
+# VmHWM (this process's own peak resident set), not ru_maxrss: Linux carries ru_maxrss over from the parent
+# at fork and keeps it across exec, so a child of a big parent would report the parent's peak.
 _RSS_SCRIPT = """
-import resource, sys
+import sys
 from impactline.pipeline import load_pipeline
 from impactline.runner import run
 run(load_pipeline(sys.argv[1]), [sys.argv[2]], sys.argv[3], overwrite=True, resume=False)
-print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+status = open("/proc/self/status").read().split("VmHWM:")[1]
+print(int(status.split()[0]))
 """
 
 
