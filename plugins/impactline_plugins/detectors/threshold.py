@@ -1,0 +1,411 @@
+"""Threshold detector with hysteresis on a tracked baseline and a robust, block-wise noise estimate.
+
+Algorithm (full discussion and the choice of defaults in docs/detectors.md)
+---------------------------------------------------------------------------
+1. The stream is cut into fixed blocks of ``baseline_window`` counted from its first sample. Each block gets
+   a baseline level (median, then the median again without samples beyond 3 robust sigmas, so events
+   hardly bias it) placed at the block centre; the baseline under any sample is the straight line
+   between neighbouring centres (the nearest line extended before the first and after the last centre).
+2. Each block's noise sigma is 1.4826 x the median absolute deviation of its baseline-subtracted samples
+   (for one polarity, of those on the quiet side, which events do not reach). That is the spread of the
+   very values being thresholded, whatever the noise colour; first differences would misjudge it for
+   filtered (correlated) noise.
+3. Sample excursions (signed by polarity) above ``release_sigma`` x sigma form runs; a run is kept if it
+   holds a sample above ``k_sigma`` x sigma. Runs longer than ``max_duration`` are cut into consecutive
+   pieces of that length (each kept on its own merit, flagged ``split``). Kept pieces closer than
+   ``merge_gap`` merge into one event as long as the event stays within ``max_duration``; events shorter
+   than ``min_duration`` are dropped.
+
+Every estimate depends only on absolute sample positions, so chunking changes nothing (bit for bit).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from impactline import Column, Detector, Event, Param, ParameterError, format_quantity
+
+from ._common import MAD_TO_SIGMA, SampleBuffer, check_chunk, median, robust_sigma
+
+__all__ = ["ThresholdDetector"]
+
+#: Samples further than this many robust sigmas from a block's median are left out of its second median.
+_CLIP_SIGMAS = 3.0
+#: Fewest samples a baseline block may hold (median and MAD need a reasonable sample).
+_MIN_BLOCK = 32
+
+
+@dataclass
+class _Piece:
+    """A kept run piece, or an event being assembled from merged pieces."""
+
+    start: int
+    end: int
+    n_sub: int
+    peak_index: int
+    peak_value: float
+    split: bool
+    baseline: float
+    noise: float
+
+
+@dataclass
+class _Track:
+    """Scanning state of one polarity."""
+
+    sign: int
+    resume: int                       # absolute index where the next scan begins
+    open_start: int | None = None     # start of the run piece still growing at the frontier
+    open_split: bool = False          # that piece began at a max_duration cut, not at a release crossing
+    event: _Piece | None = None       # event that may still absorb later pieces (merge_gap)
+
+
+@dataclass
+class _State:
+    fs: float
+    block: int
+    max_len: int
+    merge_gap: float       # samples
+    min_len: float         # samples
+    origin: int | None = None
+    buf: SampleBuffer | None = None
+    centres: dict[int, float] = field(default_factory=dict)   # block -> centre, samples from origin
+    levels: dict[int, float] = field(default_factory=dict)    # block -> baseline level, A
+    sigmas: dict[int, float] = field(default_factory=dict)    # block -> noise sigma, A
+    next_stat: int = 0
+    next_class: int = 0
+    region_start: int = 0
+    region_d: np.ndarray = field(default_factory=lambda: np.empty(0))   # x - baseline, A
+    region_b: np.ndarray = field(default_factory=lambda: np.empty(0))   # baseline, A
+    region_s: np.ndarray = field(default_factory=lambda: np.empty(0))   # noise sigma, A
+    tracks: list[_Track] = field(default_factory=list)
+    ready: list[Event] = field(default_factory=list)
+
+
+class ThresholdDetector(Detector):
+    """Events where the current leaves its tracked baseline by more than ``k_sigma`` noise sigmas.
+
+    Parameters
+    ----------
+    k_sigma : float
+        Trigger level in noise sigmas (default 5).
+    release_sigma : float
+        End level in noise sigmas (default 1); an event spans the release crossings around its trigger.
+    polarity : {"anodic", "cathodic", "both"}
+        Direction of excursions to report (anodic = positive current).
+    min_duration : float
+        Events shorter than this are dropped, s (default 0).
+    merge_gap : float
+        Kept excursions separated by less than this merge into one event, s (default 100 us).
+    max_duration : float
+        Longest event, s (default 50 ms); longer excursions are split into consecutive events.
+    baseline_window : float
+        Block length of the baseline and noise tracker, s (default 100 ms).
+    noise_rms : float or None
+        Fixed noise sigma, A, instead of the block-wise estimate.
+
+    Notes
+    -----
+    Events carry ``n_subpeaks`` (trigger-level excursions merged into the event), ``peak_index`` (absolute
+    index of the largest excursion in the event's direction) and ``split`` (the event is a piece of an
+    excursion longer than ``max_duration``).
+    """
+
+    name = "threshold"
+    kind = "detector"
+    version = "1"
+    summary = "excursions beyond k noise sigmas from a tracked baseline, with hysteresis and merging"
+    params = {
+        "k_sigma": Param(5.0, low=0, low_inclusive=False,
+                         doc="trigger level: excursion from the baseline in noise sigmas"),
+        "release_sigma": Param(1.0, low=0,
+                               doc="end level in noise sigmas (<= k_sigma); events span its crossings"),
+        "polarity": Param("anodic", kind=str, choices=("anodic", "cathodic", "both"),
+                          doc="direction of excursions: anodic (positive current), cathodic or both"),
+        "min_duration": Param(0.0, unit="s", low=0, doc="drop events shorter than this"),
+        "merge_gap": Param(100e-6, unit="s", low=0,
+                           doc="excursions separated by less than this merge into one event"),
+        "max_duration": Param(0.05, unit="s", low=0, low_inclusive=False,
+                              doc="longest event; longer excursions are split into consecutive events"),
+        "baseline_window": Param(0.1, unit="s", low=0, low_inclusive=False,
+                                 doc="block length of the baseline and noise tracker"),
+        "noise_rms": Param(None, unit="A", low=0, low_inclusive=False,
+                           doc="fixed noise sigma instead of the block-wise estimate"),
+    }
+    columns = {
+        "n_subpeaks": Column("int32", "", "number of trigger-level excursions merged into the event"),
+        "peak_index": Column("int64", "", "absolute sample index of the largest excursion"),
+        "split": Column("bool", "", "piece of an excursion longer than max_duration (cut at start or end)"),
+    }
+
+    def __init__(self, **values: Any):
+        super().__init__(**values)
+        if self.release_sigma > self.k_sigma:
+            raise ParameterError(
+                f"detector {self.name!r}", "release_sigma",
+                f"expected a number <= k_sigma ({self.k_sigma:g}), got {self.release_sigma:g}",
+            )
+
+    # ------------------------------------------------------------------ sizes
+    def _sizes(self, sample_rate_hz: float) -> tuple[int, int, float, float]:
+        if not sample_rate_hz > 0:
+            raise ValueError(f"detector {self.name!r}: sample rate must be > 0 Hz, got {sample_rate_hz!r}")
+        block = int(round(self.baseline_window * sample_rate_hz))
+        if block < _MIN_BLOCK:
+            raise ParameterError(
+                f"detector {self.name!r}", "baseline_window",
+                f"{format_quantity(self.baseline_window, 's')} is {block} samples at "
+                f"{format_quantity(sample_rate_hz, 'Hz')}; expected at least {_MIN_BLOCK} samples "
+                f"(>= {format_quantity(_MIN_BLOCK / sample_rate_hz, 's')})",
+            )
+        max_len = int(round(self.max_duration * sample_rate_hz))
+        if max_len < 1:
+            raise ParameterError(
+                f"detector {self.name!r}", "max_duration",
+                f"{format_quantity(self.max_duration, 's')} is shorter than one sample at "
+                f"{format_quantity(sample_rate_hz, 'Hz')}",
+            )
+        return block, max_len, self.merge_gap * sample_rate_hz, self.min_duration * sample_rate_hz
+
+    def lookback_samples(self, sample_rate_hz: float) -> int:
+        """Largest distance from the newest input sample back to the start of an event not yet emitted.
+
+        Samples are classified a block after they arrive (the baseline interpolates towards the next
+        block's centre), so up to ``2 * block`` samples are unclassified; an event still open or waiting
+        for a merge starts at most ``max_duration`` before the classified frontier.
+        """
+        block, max_len, _, _ = self._sizes(sample_rate_hz)
+        return max_len + 2 * block + 1
+
+    # ------------------------------------------------------------------ stream
+    def start(self, sample_rate_hz: float) -> _State:
+        """Return the initial state for a stream sampled at ``sample_rate_hz`` (Hz)."""
+        block, max_len, gap, min_len = self._sizes(sample_rate_hz)
+        signs = {"anodic": (1,), "cathodic": (-1,), "both": (1, -1)}[self.polarity]
+        state = _State(fs=float(sample_rate_hz), block=block, max_len=max_len, merge_gap=gap, min_len=min_len)
+        state.tracks = [_Track(sign=s, resume=0) for s in signs]
+        return state
+
+    def process(self, x: np.ndarray, first_index: int, state: _State) -> tuple[list[Event], _State]:
+        """Consume the next chunk of filtered current (A); ``x[0]`` has absolute index ``first_index``."""
+        st = state
+        if st.origin is None:
+            st.origin = st.region_start = int(first_index)
+            st.buf = SampleBuffer(st.origin)
+            for track in st.tracks:
+                track.resume = st.origin
+        x = check_chunk(self.name, x, first_index, st.buf.end)
+        st.buf.append(x)
+        while st.buf.end >= st.origin + (st.next_stat + 1) * st.block:
+            a = st.origin + st.next_stat * st.block
+            self._block_level(st, st.next_stat, a, a + st.block)
+            st.next_stat += 1
+        # A block is classified once the next block's level is known (the baseline interpolates to it).
+        while st.next_class + 1 < st.next_stat:
+            self._classify_block(st, st.next_class)
+        return self._emit(st, final=False), st
+
+    def finish(self, state: _State) -> list[Event]:
+        """Classify the held-back samples, close open events and return every event not yet emitted."""
+        st = state
+        if st.origin is None:
+            return []
+        total = st.buf.end - st.origin
+        n_full, tail = divmod(total, st.block)
+        # A tail of at least half a block (or the only data) is a block of its own; a shorter one is
+        # covered by the last block's level and noise, so a few end samples cannot set the end baseline.
+        tail_is_block = tail > 0 and (2 * tail >= st.block or n_full == 0)
+        if tail_is_block:
+            a = st.origin + n_full * st.block
+            self._block_level(st, n_full, a, st.buf.end)
+            st.next_stat = n_full + 1
+        while st.next_class < st.next_stat:
+            self._classify_block(st, st.next_class)
+        if tail > 0 and not tail_is_block:
+            last = st.next_stat - 1
+            self._classify(st, last, st.origin + n_full * st.block, st.buf.end, st.sigmas[last])
+        self._scan_all(st, final=True)
+        return self._emit(st, final=True)
+
+    # ------------------------------------------------------------------ baseline and noise
+    def _block_level(self, st: _State, j: int, a: int, b: int) -> None:
+        xb = st.buf.view(a, b)
+        first = median(xb)
+        spread = np.abs(xb - first)
+        sigma = MAD_TO_SIGMA * median(spread)
+        level = median(xb[spread <= _CLIP_SIGMAS * sigma]) if sigma > 0 else first
+        st.levels[j] = level
+        st.centres[j] = (a - st.origin) + (b - a - 1) / 2.0
+
+    def _baseline(self, st: _State, j: int, pos: np.ndarray) -> np.ndarray:
+        """Baseline (A) at positions ``pos`` (samples from origin, ascending) inside block ``j``."""
+        centre, level = st.centres[j], st.levels[j]
+        out = np.full(len(pos), level)
+        split = int(np.searchsorted(pos, centre))
+        # Elementwise arithmetic only, so a sample's baseline never depends on which array it sits in.
+        # Before the first and after the last centre the nearest segment is extended, so a drift is
+        # followed to the ends of the record.
+        lower = j - 1 if j - 1 in st.levels else j
+        upper = j + 1 if j + 1 in st.levels else j
+        for part, a, b in ((slice(0, split), lower, upper if lower == j else j),
+                           (slice(split, len(pos)), lower if upper == j else j, upper)):
+            if a != b:
+                ca, la, cb, lb = st.centres[a], st.levels[a], st.centres[b], st.levels[b]
+                out[part] = la + (lb - la) * ((pos[part] - ca) / (cb - ca))
+        return out
+
+    def _noise(self, residual: np.ndarray) -> float:
+        """Noise sigma (A) of one block from its baseline-subtracted samples.
+
+        With one polarity the spread is read from the quiet side only (residuals of the opposite sign):
+        the noise is symmetric, the events are not, so events barely bias it. With both polarities the
+        MAD about the baseline is used (biased up by about 1.3 x the fraction of samples in events).
+        """
+        if self.polarity != "both":
+            quiet = residual[residual < 0] if self.polarity == "anodic" else residual[residual > 0]
+            if quiet.size >= _MIN_BLOCK // 2:
+                sigma = MAD_TO_SIGMA * median(np.abs(quiet))
+                if sigma > 0.0:
+                    return sigma
+        return robust_sigma(residual, centre=0.0)
+
+    def _classify_block(self, st: _State, j: int) -> None:
+        a = st.origin + j * st.block
+        b = min(a + st.block, st.buf.end)
+        self._classify(st, j, a, b, None)
+        st.next_class = j + 1
+        for old in [k for k in st.levels if k < j - 1]:
+            del st.levels[old], st.centres[old]
+            st.sigmas.pop(old, None)
+
+    def _classify(self, st: _State, j: int, a: int, b: int, sigma: float | None) -> None:
+        """Subtract the baseline from samples ``[a, b)`` of block ``j``, add them to the scan region, scan."""
+        x = st.buf.view(a, b)
+        baseline = self._baseline(st, j, np.arange(a - st.origin, b - st.origin, dtype=np.float64))
+        d = x - baseline
+        if sigma is None:
+            sigma = self.noise_rms if self.noise_rms is not None else self._noise(d)
+            st.sigmas[j] = sigma
+        st.region_d = np.concatenate((st.region_d, d))
+        st.region_b = np.concatenate((st.region_b, baseline))
+        st.region_s = np.concatenate((st.region_s, np.full(len(d), sigma)))
+        st.buf.discard_before(b)
+        self._scan_all(st, final=False)
+
+    # ------------------------------------------------------------------ runs, pieces, events
+    def _scan_all(self, st: _State, final: bool) -> None:
+        frontier = st.region_start + len(st.region_d)
+        for track in st.tracks:
+            pieces = self._scan(st, track, frontier, final)
+            self._assemble(st, track, pieces, frontier, final)
+        keep_from = min(track.resume for track in st.tracks)
+        cut = keep_from - st.region_start
+        if cut > 0:
+            st.region_d, st.region_b, st.region_s = st.region_d[cut:], st.region_b[cut:], st.region_s[cut:]
+            st.region_start = keep_from
+
+    def _scan(self, st: _State, track: _Track, frontier: int, final: bool) -> list[_Piece]:
+        """Find the closed, triggered run pieces in ``[track.resume, frontier)`` (vectorised over runs)."""
+        a = track.resume
+        off = a - st.region_start
+        e = st.region_d[off:] if track.sign > 0 else -st.region_d[off:]
+        sig = st.region_s[off:]
+        n = len(e)
+        resumed_open = track.open_start is not None
+        resumed_split = track.open_split
+        track.open_start, track.open_split = None, False
+        track.resume = frontier
+        if n == 0:
+            return []
+        rel = e > self.release_sigma * sig
+        trg = e > self.k_sigma * sig
+        edges = np.diff(np.concatenate(([False], rel, [False])).view(np.int8))
+        starts = np.flatnonzero(edges == 1)
+        ends = np.flatnonzero(edges == -1)
+        counts = np.concatenate(([0], np.cumsum(trg)))
+        keep = counts[ends] - counts[starts] > 0
+        if not final:
+            keep |= ends == n
+        if not keep.any():
+            return []
+        rise = trg.copy()
+        rise[1:] &= ~trg[:-1]
+        rises = np.concatenate(([0], np.cumsum(rise)))
+        pieces = []
+        for s, run_end in zip(starts[keep].tolist(), ends[keep].tolist(), strict=True):
+            ps = s
+            while ps < run_end:
+                pe = min(ps + st.max_len, run_end)
+                split_start = ps > s or (ps == 0 and resumed_open and resumed_split)
+                if pe == n and not final:
+                    track.open_start, track.open_split = a + ps, split_start
+                    track.resume = a + ps
+                    break
+                # Trigger-level runs inside the piece; a piece cut at max_duration counts a run it
+                # enters while already above the trigger level.
+                n_sub = int(rises[pe] - rises[ps]) + int(trg[ps] and not rise[ps])
+                if n_sub:
+                    peak = ps + int(np.argmax(e[ps:pe]))
+                    pieces.append(_Piece(
+                        start=a + ps, end=a + pe, n_sub=n_sub, peak_index=a + peak, peak_value=float(e[peak]),
+                        split=split_start or pe < run_end, baseline=float(st.region_b[off + ps]),
+                        noise=float(sig[ps]),
+                    ))
+                ps = pe
+        return pieces
+
+    def _assemble(self, st: _State, track: _Track, pieces: list[_Piece], frontier: int, final: bool) -> None:
+        """Merge pieces closer than merge_gap (within max_duration); finalise events that can't grow."""
+        for piece in pieces:
+            event = track.event
+            if (event is not None and piece.start - event.end < st.merge_gap
+                    and piece.end - event.start <= st.max_len):
+                event.end = piece.end
+                event.n_sub += piece.n_sub
+                event.split = event.split or piece.split
+                if piece.peak_value > event.peak_value:
+                    event.peak_value, event.peak_index = piece.peak_value, piece.peak_index
+            else:
+                self._finalise(st, track)
+                track.event = piece
+        event = track.event
+        if event is None:
+            return
+        if not final:
+            # The open piece, or any piece starting at the frontier, could still merge into the event.
+            grow_open = (track.open_start is not None and track.open_start - event.end < st.merge_gap
+                         and frontier - event.start <= st.max_len)
+            grow_new = frontier - event.end < st.merge_gap and frontier + 1 - event.start <= st.max_len
+            if grow_open or grow_new:
+                return
+        self._finalise(st, track)
+
+    def _finalise(self, st: _State, track: _Track) -> None:
+        event = track.event
+        track.event = None
+        if event is None or event.end - event.start < st.min_len:
+            return
+        st.ready.append(Event(
+            start_index=event.start, end_index=event.end, baseline_A=event.baseline, noise_rms_A=event.noise,
+            polarity=track.sign,
+            extras={"n_subpeaks": event.n_sub, "peak_index": event.peak_index, "split": event.split},
+        ))
+
+    def _emit(self, st: _State, final: bool) -> list[Event]:
+        """Release finished events in start order once no earlier-starting event can still appear."""
+        if final:
+            bound = None
+        else:
+            candidates = [st.region_start + len(st.region_d)]
+            for track in st.tracks:
+                if track.event is not None:
+                    candidates.append(track.event.start)
+                if track.open_start is not None:
+                    candidates.append(track.open_start)
+            bound = min(candidates)
+        st.ready.sort(key=lambda ev: ev.start_index)
+        count = len(st.ready) if bound is None else sum(1 for ev in st.ready if ev.start_index < bound)
+        out, st.ready = st.ready[:count], st.ready[count:]
+        return out
