@@ -289,10 +289,12 @@ def parse_pipeline(text: str, source: str = "<pipeline>", base_dir: Path | None 
         meta_values = {k: p.default for k, p in _PIPELINE_KEYS.items()}
 
     # Local plugins first: they may provide stages named below.
-    if registry is None:
-        registry = default_registry()
-    local_plugins: list[Path] = []
     plugin_section = _section(data, "plugins", problem)
+    if registry is None:
+        # Local plugins belong to their pipeline: they go into a registry of its own, so two pipelines
+        # naming different local files that define a stage of the same name do not collide.
+        registry = PluginRegistry() if plugin_section.get("local") else default_registry()
+    local_plugins: list[Path] = []
     for key in plugin_section:
         if key != "local":
             problem(f"plugins.{key}", "unknown key; the only key is 'local' (a list of .py files)")
