@@ -17,9 +17,14 @@ testing     conformance checks any plugin author can run on their stages
 cli         the ``impactline`` command
 """
 
+__version__ = "0.1.0"
+
 from .errors import ImpactlineError, InputError, PipelineError, PluginError
 from .hookspecs import hookimpl
+from .output import read_events
 from .params import Param, ParameterError
+from .pipeline import Pipeline, check_pipeline, load_pipeline, parse_pipeline
+from .runner import RunResult, process_recording, run
 from .stages import (
     Classifier,
     Column,
@@ -35,10 +40,10 @@ from .stages import (
 )
 from .units import format_quantity, parse_quantity
 
-__version__ = "0.1.0"
-
 __all__ = [
     "Classifier", "Column", "Detector", "Event", "EventWindow", "FeatureExtractor", "Filter", "FilterInfo",
     "ImpactlineError", "InputError", "Param", "ParameterError", "PipelineError", "PluginError", "Reader",
     "Recording", "Stage", "format_quantity", "hookimpl", "parse_quantity", "__version__",
+    "Pipeline", "check_pipeline", "load_pipeline", "parse_pipeline", "RunResult", "process_recording", "run",
+    "read_events",
 ]
