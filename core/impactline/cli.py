@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 import time
 from collections.abc import Sequence
@@ -137,6 +138,10 @@ def _cmd_check(args: argparse.Namespace) -> int:
     if pipeline.sizing:
         material = pipeline.material()
         print(f"  sizing:   {material.name} (n = {material.electrons:g})")
+    if pipeline.collision_rate:
+        rate = pipeline.collision_rate
+        print(f"  collision rate: disc radius {format_quantity(rate['electrode_radius'], 'm')}, "
+              f"{format_quantity(rate['concentration'] * 1e-3, 'M')} particles, {rate['temperature']:g} K")
     return EXIT_OK
 
 
@@ -271,6 +276,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ImpactlineError as exc:
         print(f"impactline: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except BrokenPipeError:  # output piped into `head` and the like: not an error
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - keep Python from complaining at exit
+        return EXIT_OK
     except KeyboardInterrupt:
         print("impactline: interrupted; finished files are kept, run again to resume", file=sys.stderr)
         return 130
