@@ -1,0 +1,517 @@
+"""Event shapes: extraction (waveform measure), embedding, clustering, trained models, and the commands."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from impactline import Event, EventWindow, FilterInfo, ParameterError
+from impactline.errors import ImpactlineError
+from impactline.output import CONTRACT_COLUMNS, schema_for
+from impactline.pipeline import parse_pipeline
+from impactline.registry import default_registry
+from impactline.runner import run
+from impactline.shapes import (
+    ForestModel,
+    asinh_transform,
+    embed,
+    feature_matrix,
+    load_run_events,
+    match_labels,
+    pca_fit,
+    read_events_with,
+    read_label_file,
+    shape_matrix,
+    wavelet_features,
+)
+from impactline.shapes_cli import register_cli
+from impactline.stages import Column
+from impactline.testing import check_measure_robust, synthetic_signal
+from impactline_plugins.classifiers.cluster import (
+    DensityShapes,
+    GaussianMixtureShapes,
+    KMeansShapes,
+    relabel_by_size,
+)
+from impactline_plugins.measures.waveform import WAVEFORM_STAGES, Waveform, bin_average, log_edges, make_waveform_stage
+from scipy.integrate import quad
+from sklearn.metrics import adjusted_rand_score
+
+FS = 100e3
+INFO = FilterInfo(cutoff_hz=20e3, rise_time_s=0.35 / 20e3)
+
+
+def _window(signal, start, end, baseline=0.0, polarity=1, noise=1e-12):
+    event = Event(start, end, baseline, noise, polarity, {})
+    return EventWindow(signal=np.asarray(signal, dtype=float), window_start_index=0, start=start, end=end,
+                       sample_rate_hz=FS, event=event, filter_info=INFO)
+
+
+# ------------------------------------------------------------------------------------------------ resampling
+def test_bin_average_of_a_line_is_its_value_at_bin_centres():
+    x = 3.0 + 0.5 * np.arange(40)
+    edges = np.array([2.0, 2.7, 5.1, 9.9, 20.25, 30.0])
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    np.testing.assert_allclose(bin_average(x, edges), 3.0 + 0.5 * centres, rtol=1e-13)
+
+
+def test_bin_average_over_whole_samples_is_the_trapezoid_rule():
+    x = np.random.default_rng(1).standard_normal(50)
+    got = bin_average(x, np.array([10.0, 13.0, 14.0]))
+    assert got[0] == pytest.approx((x[10] / 2 + x[11] + x[12] + x[13] / 2) / 3, rel=1e-12)
+    assert got[1] == pytest.approx((x[13] + x[14]) / 2, rel=1e-12)
+
+
+def test_bin_average_matches_numerical_integration_of_the_interpolant():
+    # Reference: scipy.integrate.quad over np.interp of the zero-padded samples (general-purpose libraries).
+    x = np.random.default_rng(2).standard_normal(30)
+    padded_pos = np.arange(-1, 31)
+    padded = np.concatenate(([0.0], x, [0.0]))
+    edges = np.sort(np.random.default_rng(3).uniform(-4.0, 34.0, 12))
+    expected = [quad(lambda u: np.interp(u, padded_pos, padded, left=0.0, right=0.0), a, b, limit=200,
+                     points=np.arange(np.ceil(a), np.floor(b) + 1))[0] / (b - a)
+                for a, b in zip(edges[:-1], edges[1:], strict=True)]
+    np.testing.assert_allclose(bin_average(x, edges), expected, rtol=1e-9, atol=1e-12)
+
+
+def test_bin_average_keeps_the_area_when_the_window_covers_the_pulse():
+    x = np.random.default_rng(4).standard_normal(37)
+    edges = np.linspace(-3.3, 40.1, 17)
+    assert np.sum(bin_average(x, edges) * np.diff(edges)) == pytest.approx(np.sum(x), rel=1e-12)
+
+
+def test_log_edges_are_increasing_and_cover_pre_and_post():
+    edges = log_edges(12.0, 500.0, 64)
+    assert edges.size == 65 and np.all(np.diff(edges) > 0)
+    assert edges[0] == -12.0 and edges[-1] == pytest.approx(500.0)
+    assert np.count_nonzero(edges < 0) == 8 and 0.0 in edges and 1.0 in edges
+
+
+# ------------------------------------------------------------------------------------------------ waveform measure
+def test_bundled_lengths_and_factory_give_fixed_length_columns():
+    registry = default_registry()
+    for cls in WAVEFORM_STAGES:
+        assert registry.get("measure", cls.name).cls is cls
+        assert cls.columns["shape"].length == cls.points
+    assert [c.points for c in WAVEFORM_STAGES] == [64, 32, 128]
+    custom = make_waveform_stage(20)
+    assert custom.name == "waveform-20" and custom.columns["shape"].length == 20
+    values = custom().measure(_window(np.r_[np.zeros(30), np.ones(10), np.zeros(30)], 30, 40))
+    assert len(values["shape"]) == 20
+    with pytest.raises(ValueError, match="between 4 and 4096"):
+        make_waveform_stage(2)
+
+
+@pytest.mark.parametrize("cls", WAVEFORM_STAGES)
+@pytest.mark.parametrize("settings", [{}, {"align": "peak", "normalize": ["charge"]},
+                                      {"normalize": ["none", "duration"]}, {"spacing": "log", "baseline": "detector"}])
+def test_waveform_survives_awkward_events(cls, settings):
+    check_measure_robust(cls(**settings))
+
+
+def test_onset_alignment_with_one_sample_bins_gives_neighbour_means():
+    # pre + post = 64 samples over 64 points: bin k covers [start - 10 + k, start - 9 + k].
+    x = np.random.default_rng(5).standard_normal(200)
+    stage = Waveform(pre=10 / FS, post=54 / FS, normalize=["none"], baseline="detector")
+    values = stage.measure(_window(x, 80, 90))
+    expected = (x[70:134] + x[71:135]) / 2
+    np.testing.assert_allclose(values["shape"], expected.astype(np.float32), rtol=1e-6)
+    assert values["shape_scale_A"] == 1.0 and values["shape_dt_s"] == pytest.approx(1 / FS)
+    assert values["shape_complete"]
+
+
+def _gaussian(centre, n=300, width=4.0):
+    return np.exp(-0.5 * ((np.arange(n) - centre) / width) ** 2)
+
+
+def test_peak_alignment_is_sub_sample():
+    stage = Waveform(pre=20 / FS, post=44 / FS, align="peak", baseline="detector")
+    shapes = [np.asarray(stage.measure(_window(_gaussian(c), 140, 160))["shape"]) for c in (150.0, 150.3, 150.7)]
+    # The largest point sits where the alignment point falls (20 of 64 one-sample bins before it).
+    assert all(int(np.argmax(s)) in (19, 20) for s in shapes)
+    worst_peak = max(np.max(np.abs(s - shapes[0])) for s in shapes)
+    onset = Waveform(pre=20 / FS, post=44 / FS, align="onset", baseline="detector")
+    onset_shapes = [np.asarray(onset.measure(_window(_gaussian(c), 140, 160))["shape"]) for c in (150.0, 150.7)]
+    assert worst_peak < 0.02 < np.max(np.abs(onset_shapes[1] - onset_shapes[0]))
+
+
+def test_normalizations():
+    x = np.r_[np.zeros(100), np.full(40, 5e-12), np.zeros(100)]
+    window = _window(x, 100, 140)
+    peak = Waveform(pre=20 / FS, post=60 / FS).measure(window)
+    assert peak["shape_scale_A"] == pytest.approx(5e-12)
+    assert max(peak["shape"]) == pytest.approx(1.0, abs=1e-6)
+    charge = Waveform(pre=20 / FS, post=60 / FS, normalize=["charge"]).measure(window)
+    # |charge| / duration = mean excursion over the event = 5 pA for a rectangle.
+    assert charge["shape_scale_A"] == pytest.approx(5e-12)
+    raw = Waveform(pre=20 / FS, post=60 / FS, normalize=["none"]).measure(window)
+    assert max(raw["shape"]) == pytest.approx(5e-12, rel=1e-6)
+    # The area: sum(shape) * dt * scale is the event charge (window covers the pulse).
+    assert np.sum(raw["shape"]) * raw["shape_dt_s"] == pytest.approx(40 * 5e-12 / FS, rel=1e-6)
+
+
+def test_duration_normalization_makes_long_and_short_pulses_alike():
+    stage = Waveform(pre=400 / FS, post=400 / FS, normalize=["peak", "duration"])
+
+    def hann_event(length):
+        return _window(np.r_[np.zeros(500), np.hanning(length), np.zeros(500)], 500, 500 + length)
+
+    short, long = stage.measure(hann_event(120)), stage.measure(hann_event(1000))
+    assert short["shape_complete"] and long["shape_complete"]
+    assert short["shape_dt_s"] == pytest.approx(1.5 * 120 / 64 / FS)
+    # The event fills the middle 2/3 of the points whatever its duration (a fixed time base does not).
+    assert np.max(np.abs(np.subtract(short["shape"], long["shape"]))) < 0.03
+    fixed = Waveform(pre=400 / FS, post=400 / FS)
+    assert np.max(np.abs(np.subtract(fixed.measure(hann_event(120))["shape"],
+                                     fixed.measure(hann_event(1000))["shape"]))) > 0.5
+    assert max(short["shape"]) == pytest.approx(1.0, abs=0.01) and short["shape"][5] == 0.0
+
+
+def test_cathodic_events_keep_their_sign():
+    x = -_gaussian(150.0) * 3e-12
+    values = Waveform(pre=20 / FS, post=44 / FS, align="peak").measure(_window(x, 140, 160, polarity=-1))
+    assert min(values["shape"]) == pytest.approx(-1.0, abs=0.02) and max(values["shape"]) < 1e-3
+
+
+def test_window_beyond_the_recording_is_padded_and_flagged():
+    x = np.r_[np.ones(10), np.zeros(50)]
+    values = Waveform(pre=20 / FS, post=44 / FS, baseline="detector").measure(_window(x, 0, 10))
+    assert not values["shape_complete"]
+    assert values["shape"][:19] == [0.0] * 19 and values["shape"][21] == pytest.approx(1.0)
+
+
+def test_pre_baseline_follows_an_offset_the_detector_missed():
+    x = np.r_[np.full(100, 7e-12), np.full(20, 12e-12), np.full(100, 7e-12)]
+    values = Waveform(pre=20 / FS, post=44 / FS).measure(_window(x, 100, 120, baseline=0.0))
+    assert values["shape"][0] == 0.0 and values["shape_scale_A"] == pytest.approx(5e-12)
+    detector = Waveform(pre=20 / FS, post=44 / FS, baseline="detector").measure(_window(x, 100, 120))
+    assert detector["shape"][0] == pytest.approx(7 / 12, rel=1e-6)
+
+
+def test_log_spacing_shows_a_step_as_flat_and_a_blip_as_brief():
+    fs_step = np.r_[np.zeros(100), np.ones(2000)]
+    stage = Waveform(pre=10 / FS, post=1500 / FS, spacing="log")
+    step = np.asarray(stage.measure(_window(fs_step, 100, 1000))["shape"])
+    assert np.isnan(stage.measure(_window(fs_step, 100, 1000))["shape_dt_s"])
+    np.testing.assert_allclose(step[:7], 0.0, atol=1e-12)
+    assert step[7] == pytest.approx(0.4)  # the last pre bin, [-1.25, 0] samples, holds the interpolated edge
+    np.testing.assert_allclose(step[8:], 1.0, atol=1e-12)
+    blip = np.asarray(stage.measure(_window(np.r_[np.zeros(100), np.ones(3), np.zeros(2000)], 100, 103))["shape"])
+    assert blip[8] > 0.9 and np.all(blip[30:] == 0.0)
+
+
+def test_flat_events_give_nan_shapes_and_bad_settings_are_refused():
+    values = Waveform().measure(_window(np.zeros(200), 50, 70))
+    assert np.all(np.isnan(values["shape"])) and values["shape_complete"] is not None
+    with pytest.raises(ParameterError, match="peak.*charge"):
+        Waveform(normalize=["peak", "charge"])
+    with pytest.raises(ParameterError, match="none"):
+        Waveform(normalize=["none", "peak"])
+    with pytest.raises(ParameterError, match="normalize"):
+        Waveform(normalize=["area"])
+
+
+def test_waveform_in_a_pipeline_does_not_depend_on_chunking(tmp_path):
+    x, fs = synthetic_signal(n=120_000)
+    np.savez(tmp_path / "rec.npz", current=x, sample_rate_hz=fs)
+    text = """
+[pipeline]
+chunk_samples = {chunk}
+[detector]
+use = "threshold"
+[[measure]]
+use = "waveform-32"
+spacing = "log"
+post = "1 ms"
+[classifier]
+use = "kmeans"
+k = 2
+"""
+    tables = []
+    for chunk in (4096, 1 << 20):
+        result = run(parse_pipeline(text.format(chunk=chunk)), [tmp_path / "rec.npz"], tmp_path / f"run{chunk}")
+        tables.append(result.events)
+        assert (tmp_path / f"run{chunk}" / "labels.parquet").exists()
+    assert tables[0].num_rows > 5
+    assert tables[0].column("shape").equals(tables[1].column("shape"))
+    assert tables[0].column("cluster").equals(tables[1].column("cluster"))
+
+
+# ------------------------------------------------------------------------------------------------ embedding
+def test_pca_matches_scikit_learn_over_batches():
+    from sklearn.decomposition import PCA
+
+    rng = np.random.default_rng(6)
+    shapes = (rng.standard_normal((70_000, 6)) @ rng.standard_normal((6, 6))).astype(np.float32)
+    ours = pca_fit(shapes)  # 70,000 rows: two accumulation batches
+    reference = PCA().fit(shapes.astype(np.float64))
+    np.testing.assert_allclose(ours.variances, reference.explained_variance_, rtol=1e-8)
+    np.testing.assert_allclose(np.abs(ours.components), np.abs(reference.components_), atol=1e-7)
+    np.testing.assert_allclose(np.abs(ours.transform(shapes[:100], 3)),
+                               np.abs(reference.transform(shapes[:100].astype(np.float64))[:, :3]), atol=1e-8)
+
+
+def test_wavelet_features_match_pywavelets_and_keep_the_energy():
+    import pywt
+
+    shapes = np.random.default_rng(7).standard_normal((5, 64))
+    got = wavelet_features(shapes)
+    expected = np.concatenate(pywt.wavedec(shapes[2], "haar", level=4))
+    np.testing.assert_allclose(got[2], expected, rtol=1e-12)
+    np.testing.assert_allclose(np.sum(got ** 2, axis=1), np.sum(shapes ** 2, axis=1), rtol=1e-12)
+
+
+def test_asinh_is_linear_near_zero_and_logarithmic_far_out():
+    shapes = np.array([[1.0, 0.001, -0.001, 0.5], [1.0, 0.0, 0.0, 0.0]])
+    out = asinh_transform(shapes, floor=0.01)
+    assert out[0, 1] == pytest.approx(0.1, rel=5e-3) and out[0, 2] == pytest.approx(-0.1, rel=5e-3)
+    assert out[0, 0] - out[0, 3] == pytest.approx(np.log(2.0), rel=1e-3)
+
+
+def test_feature_matrix_logs_quantities_and_fills_gaps():
+    table = pa.table({"duration_s": [1e-3, 1e-2, np.nan, 1e-4], "subpeak_count": [1, 2, 3, 4]})
+    matrix, used, fills = feature_matrix(table)
+    assert used == ["duration_s", "subpeak_count"]
+    np.testing.assert_allclose(matrix[:, 0], [-3, -2, -3, -4])
+    np.testing.assert_allclose(matrix[:, 1], [1, 2, 3, 4])
+    with pytest.raises(ImpactlineError, match="not in the events"):
+        feature_matrix(table, ["fwhm_s"])
+
+
+# ------------------------------------------------------------------------------------------------ clustering
+def _templates(points=32):
+    t = np.arange(points, dtype=float)
+    return np.stack([np.exp(-t / 3.0), (t < 2) * 1.0, np.ones(points), np.exp(-((t - 12.0) / 3.0) ** 2)])
+
+
+def _shape_events(n_per_class=60, noise=0.003, seed=0, files=("a.bin", "b.bin")):
+    rng = np.random.default_rng(seed)
+    templates = _templates()
+    classes = np.repeat(np.arange(len(templates)), n_per_class)
+    rng.shuffle(classes)
+    shapes = templates[classes] + noise * rng.standard_normal((classes.size, templates.shape[1]))
+    file_of = np.asarray(files)[np.arange(classes.size) % len(files)]
+    event_id = np.zeros(classes.size, dtype=np.int64)
+    for f in files:
+        event_id[file_of == f] = np.arange(np.sum(file_of == f))
+    duration = np.array([1e-3, 1e-5, 1e-2, 5e-4])[classes] * rng.lognormal(0, 0.1, classes.size)
+    table = pa.table({
+        "file": file_of, "event_id": event_id, "duration_s": duration,
+        "peak_A": 1e-11 * rng.lognormal(0, 0.2, classes.size),
+        "shape": pa.FixedSizeListArray.from_arrays(pa.array(shapes.astype(np.float32).ravel()), templates.shape[1]),
+    })
+    return table, classes
+
+
+# k-means gets the shapes only: with the default features block it also splits the (uninformative) spread of
+# peak_A, which GMM components absorb by stretching; the benchmark reports the same.
+@pytest.mark.parametrize("stage", [KMeansShapes(embedding="pca"), GaussianMixtureShapes(), DensityShapes(),
+                                   KMeansShapes(embedding="wavelet", transform="none"),
+                                   GaussianMixtureShapes(embedding="pca")])
+def test_clustering_recovers_well_separated_shapes(stage):
+    events, classes = _shape_events()
+    out = stage.fit_predict(events)
+    assert adjusted_rand_score(classes, out["cluster"]) > 0.95
+    assert out["cluster_count"][0] == 4
+    assert stage.selection_.column("chosen").to_pylist().count(True) == 1
+
+
+def test_bic_picks_the_true_number_of_gaussian_blobs():
+    from sklearn.datasets import make_blobs
+
+    for k in (3, 5):
+        X, y = make_blobs(n_samples=600, centers=k, n_features=3, cluster_std=0.6, center_box=(-12, 12),
+                          random_state=k)
+        table = pa.table({"file": ["f"] * 600, "event_id": np.arange(600), "a": X[:, 0], "b": X[:, 1], "c": X[:, 2]})
+        stage = GaussianMixtureShapes(embedding="features", features=["a", "b", "c"], max_k=8)
+        out = stage.fit_predict(table)
+        selection = stage.selection_.to_pylist()
+        assert [r["k"] for r in selection] == list(range(1, 9)) and all(r["criterion"] == "bic" for r in selection)
+        assert out["cluster_count"][0] == k
+        assert adjusted_rand_score(y, out["cluster"]) > 0.98
+
+
+def test_density_leaves_outliers_unassigned_also_beyond_the_fitted_sample():
+    from sklearn.datasets import make_blobs
+
+    X, _ = make_blobs(n_samples=900, centers=3, n_features=2, cluster_std=0.4, random_state=1)
+    outliers = np.array([[40.0, 40.0], [-40.0, 35.0], [38.0, -41.0], [0.0, 60.0]])
+    X = np.vstack([X, outliers])
+    table = pa.table({"file": ["f"] * len(X), "event_id": np.arange(len(X)), "a": X[:, 0], "b": X[:, 1]})
+    for fit_sample in (0, 300):  # all events fitted; or 300 fitted and the rest attached by core distance
+        out = DensityShapes(embedding="features", features=["a", "b"], fit_sample=fit_sample,
+                            min_cluster_size=20).fit_predict(table)
+        assert np.all(out["cluster"][-4:] == -1) and np.all(out["cluster_probability"][-4:] == 0)
+        assert out["cluster_count"][0] == 3 and np.mean(out["cluster"][:-4] >= 0) > 0.9
+
+
+def test_events_without_a_usable_shape_stay_unassigned():
+    events, _ = _shape_events()
+    shapes = events.column("shape").to_pylist()
+    shapes[3] = [float("nan")] * 32
+    shapes[5] = None
+    events = events.set_column(events.schema.get_field_index("shape"), "shape",
+                               pa.array(shapes, type=pa.list_(pa.float32(), 32)))
+    out = KMeansShapes(k=4).fit_predict(events)
+    assert out["cluster"][3] == -1 and out["cluster"][5] == -1 and np.isnan(out["cluster_distance"][3])
+    assert np.sum(out["cluster"] == -1) == 2
+    with pytest.raises(ImpactlineError, match="waveform"):
+        KMeansShapes().fit_predict(events.drop_columns(["shape"]))
+
+
+def test_same_seed_same_clusters_and_numbering_by_size():
+    events, _ = _shape_events(seed=3)
+    for cls in (KMeansShapes, GaussianMixtureShapes, DensityShapes):
+        a = cls(seed=7, fit_sample=150).fit_predict(events)
+        b = cls(seed=7, fit_sample=150).fit_predict(events)
+        for name in a:
+            np.testing.assert_array_equal(a[name], b[name])
+    np.testing.assert_array_equal(relabel_by_size(np.array([5, 5, -1, 2, 2, 2, 9])), [1, 1, -1, 0, 0, 0, 2])
+
+
+# ------------------------------------------------------------------------------------------------ trained models
+def test_exported_forest_predicts_exactly_like_scikit_learn(tmp_path):
+    from sklearn.ensemble import RandomForestClassifier
+
+    rng = np.random.default_rng(8)
+    X = rng.standard_normal((400, 6))
+    y = np.where(X[:, 0] + 0.5 * X[:, 1] ** 2 > 0.3, "spike", np.where(X[:, 2] > 0, "blip", "step"))
+    forest = RandomForestClassifier(n_estimators=25, random_state=0).fit(X[:300], y[:300])
+    model = ForestModel.from_sklearn(forest, forest.classes_, [f"x{i}" for i in range(6)], False,
+                                     [f"x{i}" for i in range(6)], {}, {"note": "test"})
+    path = model.save(tmp_path / "model")
+    assert path.name == "model.npz"
+    loaded = ForestModel.load(path)
+    test = rng.standard_normal((500, 6)) * 2
+    np.testing.assert_array_equal(loaded.predict_proba(test), forest.predict_proba(test))
+    np.testing.assert_array_equal(loaded.predict(test), forest.predict(test))
+    assert loaded.meta == {"note": "test"} and loaded.classes == ["blip", "spike", "step"]
+    with np.load(path, allow_pickle=False) as data:  # plain arrays only
+        assert all(data[k].dtype != object for k in data.files)
+
+
+def test_model_loader_refuses_pickles_and_foreign_files(tmp_path):
+    np.savez(tmp_path / "evil.npz", header=np.array([{"format": "x"}], dtype=object))
+    with pytest.raises(ImpactlineError, match="not a model"):
+        ForestModel.load(tmp_path / "evil.npz")
+    np.savez(tmp_path / "other.npz", header=np.array(json.dumps({"format": "other", "format_version": 1})))
+    with pytest.raises(ImpactlineError, match="format"):
+        ForestModel.load(tmp_path / "other.npz")
+
+
+def test_labels_match_by_path_or_unique_name(tmp_path):
+    events = pa.table({"file": ["/data/x/a.bin", "/data/x/a.bin", "/data/y/b.bin"], "event_id": [0, 1, 0]})
+    labels = pa.table({"file": ["/data/x/a.bin", "b.bin", "c.bin"], "event_id": [1, 0, 0], "label": ["u", "v", "w"]})
+    rows, names, unmatched = match_labels(events, labels)
+    assert rows.tolist() == [1, 2] and names.tolist() == ["u", "v"] and unmatched == 1
+    (tmp_path / "bad.csv").write_text("file,id,label\na,1,x\n")
+    with pytest.raises(ImpactlineError, match="event_id"):
+        read_label_file(tmp_path / "bad.csv")
+
+
+# ------------------------------------------------------------------------------------------------ commands
+def _write_run(folder, events: pa.Table):
+    columns = {"file": CONTRACT_COLUMNS["file"], "event_id": CONTRACT_COLUMNS["event_id"],
+               "duration_s": CONTRACT_COLUMNS["duration_s"], "peak_A": CONTRACT_COLUMNS["peak_A"],
+               "shape": Column("list<float32>", "", "shape", length=32)}
+    schema = schema_for(columns)
+    (folder / "events.parquet").mkdir(parents=True)
+    for name in np.unique(events.column("file").to_pylist()):
+        part = events.filter(pa.compute.equal(events.column("file"), name)).cast(schema)
+        pq.write_table(part, folder / "events.parquet" / f"{name}.parquet")
+
+
+def _cli(argv):
+    parser = argparse.ArgumentParser()
+    register_cli(parser.add_subparsers())
+    args = parser.parse_args(argv)
+    return args.func(args)
+
+
+def test_cluster_train_classify_round_trip(tmp_path, capsys):
+    events, classes = _shape_events(n_per_class=25)
+    run_a, run_b = tmp_path / "runA", tmp_path / "runB"
+    _write_run(run_a, events)
+    other, other_classes = _shape_events(n_per_class=10, seed=9, files=("c.bin",))
+    _write_run(run_b, other)
+
+    assert _cli(["cluster", str(run_a), str(run_b), "--method", "kmeans", "--k", "auto", "--seed", "3",
+                 "--embedding", "pca"]) == 0
+    report = capsys.readouterr().out
+    assert "silhouette" in report and "<- chosen" in report
+    joined = read_events_with(run_a)
+    assert joined.column("file").to_pylist() == sorted(events.column("file").to_pylist())
+    keys = zip(events.column("file").to_pylist(), events.column("event_id").to_pylist(), strict=True)
+    truth = dict(zip(keys, classes, strict=True))
+    y = [truth[k] for k in zip(joined.column("file").to_pylist(), joined.column("event_id").to_pylist(),
+                               strict=True)]
+    assert adjusted_rand_score(y, joined.column("cluster").to_pylist()) > 0.95
+    first = pq.read_table(run_b / "clusters.parquet")
+    sizes = pq.read_table(run_a / "cluster_sizes.parquet")
+    assert sum(sizes.column("n_events").to_pylist()) == events.num_rows
+    prototypes = pq.read_table(run_a / "cluster_prototypes.parquet")
+    assert prototypes.num_rows == 4 and prototypes.schema.field("shape_median").type.list_size == 32
+    assert pq.read_table(run_a / "cluster_selection.parquet").num_rows == 9
+    # Same seed again: the same clusters.
+    assert _cli(["cluster", str(run_a), str(run_b), "--method", "kmeans", "--seed", "3", "--embedding", "pca"]) == 0
+    assert pq.read_table(run_b / "clusters.parquet").equals(first)
+    with pytest.raises(ImpactlineError, match="does not apply"):
+        _cli(["cluster", str(run_a), "--method", "density", "--k", "3"])
+
+    names = np.array(["spike", "blip", "step", "bump"])
+    (tmp_path / "labels.csv").write_text("file,event_id,label\n" + "".join(
+        f"{f},{i},{names[c]}\n" for f, i, c in zip(events.column("file").to_pylist(),
+                                                    events.column("event_id").to_pylist(), classes, strict=True)))
+    model = tmp_path / "model.npz"
+    assert _cli(["train", str(run_a), "--labels", str(tmp_path / "labels.csv"), "--out", str(model),
+                 "--trees", "20", "--folds", "3"]) == 0
+    report = capsys.readouterr().out
+    assert "cross-validated accuracy (3 folds): 1.0000" in report and "true \\ predicted" in report
+    assert _cli(["classify", str(run_b), "--model", str(model)]) == 0
+    labelled = read_events_with(run_b)
+    truth_b = names[other_classes][np.argsort(other.column("event_id").to_numpy())]
+    assert labelled.column("label").to_pylist() == truth_b.tolist()
+    assert "cluster" in labelled.column_names  # both sidecars joined
+
+    # The same model as a classifier stage in a pipeline run.
+    x, fs = synthetic_signal(n=60_000)
+    np.savez(tmp_path / "rec.npz", current=x, sample_rate_hz=fs)
+    pipeline = parse_pipeline(f"""
+[detector]
+use = "threshold"
+[[measure]]
+use = "waveform-32"
+[classifier]
+use = "forest"
+model = "{model}"
+""")
+    result = run(pipeline, [tmp_path / "rec.npz"], tmp_path / "run-forest")
+    labels = pq.read_table(tmp_path / "run-forest" / "labels.parquet")
+    assert labels.num_rows == result.events.num_rows > 0
+    assert set(labels.column("label").to_pylist()) <= set(names) | {None}
+    # A model meets events without the inputs it was trained on: a clear refusal.
+    with pytest.raises(ImpactlineError, match="peak_A"):
+        ForestModel.load(model).inputs(result.events.drop_columns(["peak_A"]).append_column(
+            "rise_time_s", pa.array(np.ones(result.events.num_rows))))
+
+
+def test_commands_explain_bad_input(tmp_path):
+    with pytest.raises(ImpactlineError, match="not a folder"):
+        _cli(["cluster", str(tmp_path / "missing")])
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(ImpactlineError, match="no events parts"):
+        load_run_events([tmp_path / "empty"])
+    events, _ = _shape_events(n_per_class=5)
+    _write_run(tmp_path / "run", events)
+    (tmp_path / "labels.csv").write_text("file,event_id,label\nzzz.bin,0,spike\n")
+    with pytest.raises(ImpactlineError, match="matches an event"):
+        _cli(["train", str(tmp_path / "run"), "--labels", str(tmp_path / "labels.csv"), "--out", str(tmp_path / "m")])
+    with pytest.raises(ImpactlineError, match="not a model"):
+        _cli(["classify", str(tmp_path / "run"), "--model", str(tmp_path / "labels.csv")])
+    shapes, valid = shape_matrix(events)
+    assert shapes.shape == (20, 32) and valid.all()
+    assert embed(events, "pca", components=3, transform="none").X.shape == (20, 3)
