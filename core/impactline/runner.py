@@ -355,8 +355,10 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
     start = event.start_index - window_start
     end = event.end_index - window_start
     excursion = signal[start:end] - event.baseline_A
-    peak = float(excursion[int(np.argmax(event.polarity * excursion))])
+    peak_at = int(np.argmax(event.polarity * excursion))
+    peak = float(excursion[peak_at])
     delay_samples = (chain.delay_s or 0.0) * fs
+    onset_index = event.start_index + _half_height_crossing(event.polarity * excursion[:peak_at + 1])
     start_s = (event.start_index - delay_samples) / fs
     end_s = (event.end_index - delay_samples) / fs
     previous = state["last_start"]
@@ -367,6 +369,7 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
         "event_id": event_id,
         "start_s": start_s,
         "end_s": end_s,
+        "onset_s": (onset_index - delay_samples) / fs,
         "duration_s": end_s - start_s,
         "start_index": int(round(event.start_index - delay_samples)),
         "end_index": int(round(event.end_index - delay_samples)),
@@ -409,6 +412,22 @@ def predicted_collision_rate(settings: dict[str, Any] | None, median_diameter_m:
     predicted = float(collision_frequency_disc(diffusion, settings["concentration"], settings["electrode_radius"]))
     return {"diffusion_coefficient_m2_per_s": diffusion, "predicted_rate_per_s": predicted,
             "rate_ratio": measured_rate_per_s / predicted}
+
+
+def _half_height_crossing(rising: np.ndarray) -> float:
+    """Fractional index where a leading edge (event start to peak, polarity applied) first reaches half its peak.
+
+    A band-limited edge is symmetric about its half-height point (exactly so for a zero-phase filter), so this
+    crossing, minus the delay of causal filters, estimates when a fast-rising event began; the detector's
+    start (where the filtered signal leaves the baseline) lies earlier by about one rise time.
+    """
+    half = 0.5 * rising[-1]
+    above = np.flatnonzero(rising >= half)
+    first = int(above[0]) if above.size else len(rising) - 1
+    if first == 0:
+        return 0.0
+    low, high = rising[first - 1], rising[first]
+    return first - 1 + float((half - low) / (high - low)) if high > low else float(first)
 
 
 def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int, duration: float,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import codecs
 import math
+import mmap
 import stat
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager
@@ -404,10 +405,16 @@ def iter_array_chunks(
     """
     chunk_samples = check_chunk_samples(chunk_samples)
     with open_source() as source:
+        mapping = getattr(source, "_mmap", None)
         for start in range(0, n_samples, chunk_samples):
             stop = min(start + chunk_samples, n_samples)
             raw = source[start:stop] if channel is None else source[start:stop, channel]
-            yield scaling.apply(raw, zero)
+            samples = scaling.apply(raw, zero)
+            if mapping is not None:
+                # Pages of a memory-mapped file count in the resident set until released: drop the ones
+                # read so far, so memory stays flat however long the file is (they are re-read if needed).
+                mapping.madvise(mmap.MADV_DONTNEED)
+            yield samples
 
 
 def _plain(value: Any) -> Any:
