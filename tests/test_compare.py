@@ -65,8 +65,9 @@ chunk_samples = {chunk}
 
 [[variant]]
 name = "raw-k5"
-[variant.detector]
+[variant.detector]             # release at 1 sigma: starts within a few samples of the pulses
 use = "threshold"
+release_sigma = 1
 k_sigma = 5
 
 [[variant]]
@@ -76,6 +77,7 @@ use = "bessel"
 cutoff = "20 kHz"
 [variant.detector]
 use = "threshold"
+release_sigma = 1
 k_sigma = 5
 
 [[variant]]
@@ -85,6 +87,7 @@ use = "bessel"
 cutoff = "20 kHz"
 [variant.detector]
 use = "threshold"
+release_sigma = 1
 k_sigma = 6
 [[variant.measure]]
 use = "pulse-shape"

@@ -125,7 +125,9 @@ def test_polarity_selects_the_direction():
     _pulse(x, 25_080, 50, -12 * SIGMA)  # opposite directions 30 samples apart never merge
     found = {}
     for polarity in ("anodic", "cathodic", "both"):
-        events = detect_array(ThresholdDetector(polarity=polarity), x, fs, 4096, check_contract=True)
+        # Release at 1 sigma (not the default, the baseline) so starts sit within a sample of the pulses.
+        events = detect_array(ThresholdDetector(polarity=polarity, release_sigma=1), x, fs, 4096,
+                              check_contract=True)
         found[polarity] = [((e.start_index + 5) // 10 * 10, e.polarity) for e in events]
     assert found["anodic"] == [(5000, 1), (25000, 1)]
     assert found["cathodic"] == [(15000, -1), (25080, -1)]
@@ -158,6 +160,27 @@ def _coloured_noise(rng, n, fs, fc):
     return signal.sosfilt(sos, raw)
 
 
+def test_noise_about_the_trigger_level_does_not_count_as_subpeaks():
+    # Slowly decaying spikes on filtered noise cross the 5-sigma trigger level several times on the way down;
+    # one excursion is still one (the count once took every crossing: 1 right out of 138 simulated spikes).
+    fs, n = 250e3, 300_000
+    rng = np.random.default_rng(12)
+    noise = _coloured_noise(rng, n, fs, 25e3)
+    sigma = np.std(noise[1000:])
+    x = noise.copy()
+    starts = np.arange(3_000, n - 3_000, 4_000)
+    for s in starts:
+        _spike(x, s, 20 * sigma, 400, 3000)
+    events = detect_array(ThresholdDetector(merge_gap=0), x, fs, 65536)
+    assert len(events) == len(starts)
+    crossings = []
+    for e in events:
+        above = (x[e.start_index:e.end_index] - e.baseline_A) > 5 * e.noise_rms_A
+        crossings.append(int(np.sum(above[1:] & ~above[:-1]) + above[0]))
+    assert np.mean(np.array(crossings) > 1) > 0.5  # the noise does carry most of them across the trigger
+    assert all(e.extras["n_subpeaks"] == 1 for e in events)
+
+
 def test_noise_estimate_is_the_spread_of_coloured_noise_even_with_events():
     fs, n = 250e3, 500_000
     rng = np.random.default_rng(10)
@@ -167,7 +190,7 @@ def test_noise_estimate_is_the_spread_of_coloured_noise_even_with_events():
     starts = np.arange(3_000, n - 3_000, 2_500)  # 200 events covering 8 % of the record
     for s in starts:
         _spike(x, s, 40 * sigma, 40, 200)
-    events = detect_array(ThresholdDetector(), x, fs, 65536)
+    events = detect_array(ThresholdDetector(release_sigma=1), x, fs, 65536)
     # Correlated noise holds the signal above the release level for a few samples at a time, so starts
     # move earlier by up to ~1/fc; a noise bump on a decaying tail may add a separate small event.
     matched = [e for e in events if np.min(np.abs(starts - e.start_index)) <= 8]

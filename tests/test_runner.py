@@ -23,6 +23,7 @@ cutoff = "25 kHz"
 
 [detector]
 use = "threshold"
+release_sigma = 1            # events start at the 1-sigma crossing: onsets are checked to a few samples
 
 [[measure]]
 use = "baseline-context"

@@ -92,13 +92,15 @@ class ThresholdDetector(Detector):
     k_sigma : float
         Trigger level in noise sigmas (default 5).
     release_sigma : float
-        End level in noise sigmas (default 1); an event spans the release crossings around its trigger.
+        End level in noise sigmas (default 0: the baseline); an event spans the release crossings around its
+        trigger. Ending at the baseline keeps the tail of a decaying pulse, and so its charge.
     polarity : {"anodic", "cathodic", "both"}
         Direction of excursions to report (anodic = positive current).
     min_duration : float
         Events shorter than this are dropped, s (default 0).
     merge_gap : float
-        Kept excursions separated by less than this merge into one event, s (default 100 us).
+        Kept excursions separated by less than this merge into one event, s (default 500 us: the sub-spikes
+        of a burst and the slow tail of a spike stay one event).
     max_duration : float
         Longest event, s (default 50 ms); longer excursions are split into consecutive events.
     baseline_window : float
@@ -108,24 +110,25 @@ class ThresholdDetector(Detector):
 
     Notes
     -----
-    Events carry ``n_subpeaks`` (trigger-level excursions merged into the event), ``peak_index`` (absolute
+    Events carry ``n_subpeaks`` (excursions merged into the event: runs beyond the release level that reach
+    the trigger level, so noise about the trigger level never counts twice), ``peak_index`` (absolute
     index of the largest excursion in the event's direction) and ``split`` (the event is a piece of an
     excursion longer than ``max_duration``).
     """
 
     name = "threshold"
     kind = "detector"
-    version = "1"
+    version = "2"  # 2: n_subpeaks counts excursions, not noise crossings of the trigger; new defaults
     summary = "excursions beyond k noise sigmas from a tracked baseline, with hysteresis and merging"
     params = {
         "k_sigma": Param(5.0, low=0, low_inclusive=False,
                          doc="trigger level: excursion from the baseline in noise sigmas"),
-        "release_sigma": Param(1.0, low=0,
+        "release_sigma": Param(0.0, low=0,
                                doc="end level in noise sigmas (<= k_sigma); events span its crossings"),
         "polarity": Param("anodic", kind=str, choices=("anodic", "cathodic", "both"),
                           doc="direction of excursions: anodic (positive current), cathodic or both"),
         "min_duration": Param(0.0, unit="s", low=0, doc="drop events shorter than this"),
-        "merge_gap": Param(100e-6, unit="s", low=0,
+        "merge_gap": Param(500e-6, unit="s", low=0,
                            doc="excursions separated by less than this merge into one event"),
         "max_duration": Param(0.05, unit="s", low=0, low_inclusive=False,
                               doc="longest event; longer excursions are split into consecutive events"),
@@ -135,7 +138,8 @@ class ThresholdDetector(Detector):
                            doc="fixed noise sigma instead of the block-wise estimate"),
     }
     columns = {
-        "n_subpeaks": Column("int32", "", "number of trigger-level excursions merged into the event"),
+        "n_subpeaks": Column("int32", "", "excursions merged into the event (each a run beyond the release "
+                                          "level reaching the trigger level)"),
         "peak_index": Column("int64", "", "absolute sample index of the largest excursion"),
         "split": Column("bool", "", "piece of an excursion longer than max_duration (cut at start or end)"),
     }
@@ -330,9 +334,6 @@ class ThresholdDetector(Detector):
             keep |= ends == n
         if not keep.any():
             return []
-        rise = trg.copy()
-        rise[1:] &= ~trg[:-1]
-        rises = np.concatenate(([0], np.cumsum(rise)))
         pieces = []
         for s, run_end in zip(starts[keep].tolist(), ends[keep].tolist(), strict=True):
             ps = s
@@ -343,13 +344,13 @@ class ThresholdDetector(Detector):
                     track.open_start, track.open_split = a + ps, split_start
                     track.resume = a + ps
                     break
-                # Trigger-level runs inside the piece; a piece cut at max_duration counts a run it
-                # enters while already above the trigger level.
-                n_sub = int(rises[pe] - rises[ps]) + int(trg[ps] and not rise[ps])
-                if n_sub:
+                # One excursion per piece, however often noise carries it back and forth across the
+                # trigger level: only a return to the release level separates two excursions (the same
+                # hysteresis that bounds the events).
+                if counts[pe] > counts[ps]:
                     peak = ps + int(np.argmax(e[ps:pe]))
                     pieces.append(_Piece(
-                        start=a + ps, end=a + pe, n_sub=n_sub, peak_index=a + peak, peak_value=float(e[peak]),
+                        start=a + ps, end=a + pe, n_sub=1, peak_index=a + peak, peak_value=float(e[peak]),
                         split=split_start or pe < run_end, baseline=float(st.region_b[off + ps]),
                         noise=float(sig[ps]),
                     ))
