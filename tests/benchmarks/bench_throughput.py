@@ -35,7 +35,7 @@ from scipy import signal
 ROOT = Path(__file__).resolve().parents[2]
 FS = 250e3
 GAIN = 1e-13  # A per count
-CUTOFF = 25e3  # keep in step with pipelines/default.toml
+CUTOFF = 15e3  # keep in step with pipelines/default.toml
 ORDER = 4
 
 
