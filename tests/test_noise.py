@@ -29,9 +29,10 @@ from impactline.noise import (
     shot_noise_psd,
     welch_spectrum,
 )
+from impactline.noise.events import reference_scale
 from impactline.noise.filters import _normalised_integral, _power_response_normalised, _prototype, bessel_step_shape
 from impactline.noise.model import parse_voltage_noise
-from impactline.noise.spectrum import Spectrum, WelchAccumulator, bin_correlation
+from impactline.noise.spectrum import Spectrum, WelchAccumulator, bin_correlation, effective_averages
 from impactline.noise.synth import NoiseSynthesizer
 from impactline.physics import charge_from_diameter
 from impactline.registry import default_registry
@@ -288,6 +289,22 @@ def test_mains_lines_found_masked_and_kept_out_of_the_fit():
     assert find_mains_peaks(clean).mains_peaks == []
 
 
+def test_no_mains_lines_taken_from_the_rise_of_flicker_noise_at_a_coarse_resolution():
+    # Segments shortened to keep events out give a coarse resolution (24 Hz here): the 1/f rise next to DC
+    # must not pass for mains lines (a running median over 31 bins, 0-750 Hz, sat far below the bins near
+    # 50 Hz and found 1-3 "lines" in each of these recordings), while real hum is still found at 12 Hz (at
+    # 24 Hz the Hann main lobes of 50 Hz harmonics, +-2 bins, overlap and cover the floor).
+    n = 1 << 19
+    t = np.arange(n) / FS
+    lines = {1: 2e-12, 3: 1e-12, 5: 0.5e-12}
+    hum = sum(amp * np.sin(2 * np.pi * 50.0 * h * t + h) for h, amp in lines.items())
+    for seed in (21, 22, 23):
+        x, _ = synth([100 * B_1G, B_1G, 0.0, d_coeff(10e-12)], n, seed=seed)
+        assert find_mains_peaks(welch_spectrum(x, FS, nperseg=4096)).mains_peaks == []
+        spec = find_mains_peaks(welch_spectrum(x + hum, FS, nperseg=8192))
+        assert spec.mains_hz == 50.0 and {p.harmonic for p in spec.mains_peaks} == set(lines)
+
+
 # ------------------------------------------------------------------------------------------ detection limits
 def test_detection_limits_and_particle_size():
     coefs = np.array([0.0, B_1G, 0.0, d_coeff(10e-12)])
@@ -432,3 +449,191 @@ def test_filtered_rms_of_measured_spectrum_matches_time_domain():
     assert filtered_spectrum_rms(spec, 2e3, 4) == pytest.approx(np.std(y), rel=0.03)
     assert filtered_model_rms([0.0, B_1G, 0.0, d_coeff(10e-12)], 2e3, 4, spec.resolution_hz / 2, FS / 2) == \
         pytest.approx(np.std(y), rel=0.03)
+
+
+# ------------------------------------------------------------------------------------------ events left out
+def _with_pulses(x, rate_hz, seed, fs=FS, height=1e-9, tau=300e-6):
+    """Noise plus exponentially decaying pulses (collision-like events) at Poisson times; returns (x, onsets)."""
+    rng = np.random.default_rng(seed)
+    onsets = np.flatnonzero(rng.random(len(x)) < rate_hz / fs)
+    t = np.arange(int(12 * tau * fs)) / fs
+    shape = height * np.exp(-t / tau)
+    y = x.copy()
+    for k in onsets:
+        part = y[k:k + len(shape)]
+        part += shape[: len(part)]
+    return y, onsets
+
+
+def test_simulated_collision_recording_gives_back_the_noise_between_events(tmp_path):
+    # impactline.simulate: 4 s at 250 kHz, ~5 collisions/s of nA spikes, bursts and tails on 2.6 pA of noise
+    # (5 fA/rtHz white floor, C_in 10 pF with e_n 5 nV/rtHz, 1/f corner 100 Hz). The amplifier filter is put
+    # at 100 kHz so that it bends the spectrum by < 2 % below the 20 kHz fitted here (noise_psd_model, checked
+    # below). The simulator's own noise model is the reference.
+    from impactline.simulate import SimulationSpec, noise_psd_model, noise_rms, simulate
+
+    spec = SimulationSpec(duration_s=4.0, bandwidth_hz=100e3, seed=2)
+    sim = simulate(spec, tmp_path / "collisions.bin")
+    white = spec.white_noise_A_per_rtHz ** 2
+    f2 = (2 * math.pi * spec.input_capacitance_F * spec.voltage_noise_V_per_rtHz) ** 2
+    gain2 = noise_psd_model(np.array([20e3]), spec, components=True)["amplifier_gain2"]
+    assert gain2[0] > 0.98
+    terms = ("flicker", "white", "capacitive")
+    kept_out = analyze_noise(sim.data_path, fit_f_hi_hz=20e3, terms=terms, chunk_samples=300_000)
+    averaged = analyze_noise(sim.data_path, fit_f_hi_hz=20e3, terms=terms, events="keep")
+    rms = {a.events.mode: next(r.brickwall_measured_A for r in a.bandwidth if r.bandwidth_hz == a.nyquist_hz)
+           for a in (kept_out, averaged)}
+    assert kept_out.fit.white == pytest.approx(white, rel=0.1)
+    assert kept_out.fit.capacitive == pytest.approx(f2, rel=0.1)
+    assert rms["exclude"] == pytest.approx(noise_rms(spec), rel=0.1)
+    assert 0.7 < kept_out.fit.reduced_chi2 < 1.5
+    # With the events averaged in, the same analysis is far off: the test can fail.
+    assert rms["keep"] > 10 * noise_rms(spec)
+    assert not averaged.fit.white == pytest.approx(white, rel=0.5, abs=0)
+    # Every true event lies inside an excursion; what was left out is reported.
+    truth = pq.read_table(sim.truth_path).to_pylist()
+    ev = kept_out.events
+    peaks = np.array([round(r["peak_s"] * spec.sample_rate_hz) for r in truth])
+    inside = np.searchsorted(ev.ends, peaks, side="right")
+    assert np.all(ev.starts[inside] <= peaks)
+    assert len(truth) <= ev.n_excursions + 2 and ev.n_excursions <= len(truth) + 2
+    assert ev.sigma_A == pytest.approx(noise_rms(spec), rel=0.1)
+    s = kept_out.spectrum
+    assert 0 < s.n_segments_excluded < s.n_segments_total and s.n_segments >= 16
+    assert 0 < ev.event_fraction < 0.2
+    # The median of the periodograms (scipy.signal.welch, average="median", with its bias correction) is no
+    # cure at this event rate: most segments hold an event.
+    x = np.fromfile(sim.data_path, dtype="<f4").astype(float)
+    f, p = signal.welch(x, fs=spec.sample_rate_hz, nperseg=ev.segment_requested, average="median")
+    band = (f > 1e3) & (f < 10e3)
+    assert np.mean(p[band] / noise_psd_model(f[band], spec)) > 10
+
+
+def test_event_free_recording_gives_exactly_the_same_answer_in_both_modes():
+    x, _ = synth([50 * B_1G, B_1G, 0.0, d_coeff(10e-12)], 1 << 18, seed=12)
+    kept_out = analyze_noise(x, FS, segment=4096)
+    averaged = analyze_noise(x, FS, segment=4096, events="keep")
+    assert kept_out.events.n_excursions == 0 and kept_out.spectrum.n_segments_excluded == 0
+    np.testing.assert_array_equal(kept_out.spectrum.psd, averaged.spectrum.psd)
+    np.testing.assert_array_equal(kept_out.fit.coefficients, averaged.fit.coefficients)
+    assert kept_out.spectrum.effective_averages == averaged.spectrum.effective_averages
+    # The default segment is not shortened either.
+    assert analyze_noise(x, FS).spectrum.nperseg == segment_samples(None, FS, len(x))
+
+
+def test_event_exclusion_does_not_depend_on_the_chunk_size():
+    x, _ = synth([50 * B_1G, B_1G, 0.0, d_coeff(10e-12)], 300_001, seed=13)
+    y, _ = _with_pulses(x, 20.0, seed=14)
+    ref = analyze_noise(y, FS, chunk_samples=len(y))
+    assert ref.events.n_excursions > 0 and ref.spectrum.n_segments_excluded > 0
+    for chunk in (3000, 4096, 10_007):
+        a = analyze_noise([y[i:i + chunk] for i in range(0, len(y), chunk)], FS, n_samples=len(y))
+        np.testing.assert_array_equal(a.events.starts, ref.events.starts)
+        np.testing.assert_array_equal(a.events.ends, ref.events.ends)
+        assert a.spectrum.n_segments == ref.spectrum.n_segments and a.spectrum.nperseg == ref.spectrum.nperseg
+        np.testing.assert_allclose(a.spectrum.psd, ref.spectrum.psd, rtol=1e-10, atol=0)
+        np.testing.assert_allclose(a.fit.coefficients, ref.fit.coefficients, rtol=1e-6, atol=1e-45)
+    with pytest.raises(ValueError, match="one-shot iterator"):
+        analyze_noise((y[i:i + 4096] for i in range(0, len(y), 4096)), FS)
+
+
+def test_dense_events_shorten_the_default_segment_but_not_a_given_one():
+    # 60 pulses/s of 1 nA (tau 300 us) on 1.3 pA of noise: few long segments are clean, shorter ones are.
+    x, _ = synth([0.0, B_1G, 0.0, d_coeff(10e-12)], 1 << 19, seed=15)
+    y, onsets = _with_pulses(x, 60.0, seed=16)
+    a = analyze_noise(y, FS)
+    ev = a.events
+    assert ev.shortened and ev.segment_used < ev.segment_requested
+    assert ev.candidates[0][2] < 16 <= ev.candidates[-1][2] == a.spectrum.n_segments
+    assert a.fit.white == pytest.approx(B_1G, rel=0.1)
+    assert a.fit.capacitive == pytest.approx(d_coeff(10e-12), rel=0.1)
+    # A given segment is kept; when every segment holds an event the error says what to do.
+    with pytest.raises(InputError, match="hold events.*--events keep"):
+        analyze_noise(y, FS, segment=1 << 16)
+
+
+def test_excursions_follow_the_tail_and_find_low_steps_by_averaging():
+    from impactline.noise.events import BlockScale, ExcursionFinder, find_events, reference_scale
+
+    rng = np.random.default_rng(17)
+    sigma = 1e-12
+    x = sigma * rng.standard_normal(1 << 17)
+    # A pulse of 20 sigma decaying with tau = 200 samples: above 6 sigma for 240 samples, above the release
+    # level of 2 sigma until 200 ln(10) = 460 samples after the onset; in means of 512 samples (sigma / 22.6)
+    # its tail stays above the release level for two more means (e^-2.56 x 4000 / 512 = 0.6 sigma = 14 sigma_512).
+    onset = 30_000
+    x[onset:onset + 3000] += 20 * sigma * np.exp(-np.arange(3000) / 200.0)
+    # A step of 2 sigma: invisible sample by sample, 45 sigma in means of 512 samples (sigma / sqrt(512)).
+    step_at = 100_000
+    x[step_at:] += 2 * sigma
+    block = 1 << 15
+    ev = find_events(lambda: iter((x,)), block)
+    assert ev.averaging_samples == (1, 8, 64, 512)
+    assert ev.sigma_A == pytest.approx(sigma, rel=0.05)
+    # sigma of means of m independent samples is sigma / sqrt(m) (1.4826 MAD estimates it)
+    assert ev.sigma_by_scale_A[2] == pytest.approx(sigma / 8, rel=0.1)
+    first = np.searchsorted(ev.ends, onset, side="right")
+    assert ev.starts[first] <= onset and 460 < ev.ends[first] - onset <= 3 * 512
+    hit = np.searchsorted(ev.ends, step_at, side="right")
+    assert ev.starts[hit] <= step_at < ev.ends[hit]
+    # Sample by sample alone, the step is not an excursion.
+    scan = BlockScale(block)
+    scan.update(x)
+    centres, scales = scan.result()
+    raw = ExcursionFinder(centres, reference_scale(scales), block)
+    raw.update(x)
+    starts, ends = raw.result()
+    assert not np.any((starts <= step_at) & (step_at < ends)) and np.any((starts <= onset) & (onset < ends))
+
+
+def test_reference_scale_is_a_running_median_that_ignores_crowded_blocks():
+    scales = np.ones(40)
+    scales[[5, 6, 7, 20]] = 50.0  # blocks crowded with events
+    np.testing.assert_array_equal(reference_scale(scales), np.ones(40))
+    ramp = np.linspace(1.0, 2.0, 40)  # a noise level that changes slowly is followed
+    np.testing.assert_allclose(reference_scale(ramp)[8:-8], ramp[8:-8])
+    # 1.4826 = 1 / Phi^-1(3/4) makes the MAD a standard deviation for Gaussian noise (Donoho & Johnstone 1994;
+    # REFERENCES.md, wavelet denoising).
+    from impactline.noise.events import _MAD_TO_SIGMA
+    from scipy import stats
+
+    assert _MAD_TO_SIGMA == pytest.approx(1 / stats.norm.ppf(0.75), rel=1e-12)
+
+
+def test_effective_averages_count_the_overlapping_pairs_that_remain():
+    w = signal.get_window("hann", 1024)
+    k_all = effective_averages(w, 100, 512)
+    np.testing.assert_allclose(effective_averages(w, 100, 512, lag_pairs=np.array([99])), k_all, rtol=1e-12)
+    # Every other segment of a 50 % overlap grid: no two averaged segments overlap, so they are independent.
+    assert effective_averages(w, 50, 512, lag_pairs=np.array([0])) == pytest.approx(50.0)
+    # Streamed with a gap: the accumulator counts the pairs it really averaged (Welch 1967 variance formula).
+    rng = np.random.default_rng(18)
+    x = rng.standard_normal(512 * 21)
+    acc = WelchAccumulator(FS, 1024, 512, exclude=(np.array([512 * 10 + 5]), np.array([512 * 10 + 6])))
+    acc.update(x)
+    spec = acc.result()
+    assert (spec.n_segments, spec.n_segments_total) == (18, 20)  # segments 9 and 10 hold sample 5125
+    assert spec.lag_pairs.tolist() == [16]  # neighbours (0,1)..(7,8) and (11,12)..(18,19)
+    assert spec.used_samples == 2 * (8 * 512 + 1024)  # segments 0-8 and 11-19 cover 5120 samples each
+
+
+def test_cli_reports_what_was_left_out(tmp_path, capsys):
+    x, _ = synth([0.0, B_1G, 0.0, d_coeff(10e-12)], 200_000, seed=19)
+    y, _ = _with_pulses(x, 15.0, seed=20)
+    np.save(tmp_path / "cell.npy", y)
+    common = [str(tmp_path / "cell.npy"), "--sample-rate", "100 kHz", "--quiet"]
+    assert cli_main(["noise", *common, "--out", str(tmp_path / "a")]) == 0
+    printed = capsys.readouterr().out
+    assert "excursions beyond 6 sigma" in printed and "segments left out" in printed
+    assert cli_main(["noise", *common, "--out", str(tmp_path / "b"), "--events", "keep"]) == 0
+    assert "kept in the spectrum" in capsys.readouterr().out
+    rows = [pq.read_table(tmp_path / d / "noise_fit.parquet").to_pylist()[0] for d in ("a", "b")]
+    fit_table = pq.read_table(tmp_path / "a" / "noise_fit.parquet")
+    assert fit_table.schema.field("event_time_s").metadata[b"unit"] == b"s"
+    assert rows[0]["events_mode"] == "exclude" and rows[1]["events_mode"] == "keep"
+    assert rows[0]["segments_excluded"] > 0 and rows[0]["n_event_excursions"] > 0
+    assert rows[0]["segments_excluded_fraction"] == pytest.approx(
+        rows[0]["segments_excluded"] / rows[0]["segments_total"])
+    assert rows[1]["segments_excluded"] == 0 and rows[1]["n_event_excursions"] is None
+    assert rows[0]["rms_total_A"] < rows[1]["rms_total_A"] / 10
+    assert cli_main(["noise", *common, "--out", str(tmp_path / "c"), "--event-threshold", "0"]) == 2

@@ -3,7 +3,7 @@
 What it answers, for each recording (a file read through the plugin readers, or an array):
 
 * the one-sided power spectral density by Welch's method, streamed chunk by chunk (A^2/Hz), with mains
-  lines found and masked;
+  lines found and masked, and with the segments that hold events left out (the noise between events);
 * rms noise over any band and versus bandwidth (brick wall, and after a Bessel filter);
 * the fit of the input-referred current-noise model ``A/f + B + C f + D f^2`` with uncertainties, corner
   frequencies, the equivalent resistance of the white floor and the input capacitance ``C_in`` from the
@@ -15,6 +15,7 @@ What it answers, for each recording (a file read through the plugin readers, or 
 Modules
 -------
 spectrum   streaming Welch, mains lines, band rms
+events     finding events (robust noise scale, excursions) and keeping them out of the spectrum
 model      the four-term model, its fit, derived quantities
 filters    analog Bessel responses, rise time, pulse peak, noise integrals
 limits     detection limits and the optimal cutoff
@@ -42,6 +43,14 @@ import numpy as np
 from ..errors import InputError
 from ..stages import Recording
 from ..units import parse_quantity
+from .events import (
+    DEFAULT_RELEASE_SIGMA,
+    DEFAULT_THRESHOLD_SIGMA,
+    EVENT_MODES,
+    EventExclusion,
+    choose_segment,
+    find_events,
+)
 from .filters import bessel_power_response, noise_bandwidth_factors, pulse_peak_fraction
 from .limits import (
     DetectionLimits,
@@ -77,6 +86,8 @@ __all__ = [
     "BandwidthRow",
     "CapacitanceComparison",
     "DetectionLimits",
+    "EVENT_MODES",
+    "EventExclusion",
     "MainsPeak",
     "NoiseFit",
     "OptimalCutoff",
@@ -92,6 +103,7 @@ __all__ = [
     "detection_limits",
     "filtered_model_rms",
     "filtered_spectrum_rms",
+    "find_events",
     "find_mains_peaks",
     "fit_noise_model",
     "johnson_current_psd",
@@ -235,6 +247,8 @@ class NoiseAnalysis:
         Detection limits at the chosen cutoff.
     reader : str
         Reader used ("array" for an array).
+    events : EventExclusion or None
+        How events were kept out of the spectrum and how much was left out.
     """
 
     name: str
@@ -246,6 +260,7 @@ class NoiseAnalysis:
     bessel_order: int
     limits: DetectionLimits
     reader: str = "array"
+    events: EventExclusion | None = None
 
     @property
     def input_capacitance(self) -> tuple[float, float]:
@@ -301,13 +316,16 @@ def analyze_noise(source: str | Path | np.ndarray | Iterable[np.ndarray], sample
                   terms: tuple[str, ...] = TERM_NAMES, temperature_k: float = 298.15,
                   voltage_noise: float | str | None = None, cutoff_hz: float | None = None, order: int = 4,
                   k_sigma: float = 5.0, material: str | None = None, target_duration_s: float | None = None,
-                  n_samples: int | None = None, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) -> NoiseAnalysis:
+                  n_samples: int | None = None, chunk_samples: int = DEFAULT_CHUNK_SAMPLES,
+                  events: str = "exclude", event_threshold: float = DEFAULT_THRESHOLD_SIGMA) -> NoiseAnalysis:
     """Spectrum, noise-model fit, rms versus bandwidth and detection limits of one recording.
 
     Parameters
     ----------
     source : path, ndarray or iterable of ndarray
-        A file (read through the reader plugins), an array of current (A), or an iterable of chunks.
+        A file (read through the reader plugins), an array of current (A), or an iterable of chunks. With
+        ``events="exclude"`` the recording is read three times, so an iterable must be re-iterable (a
+        list of chunks, not a generator).
     sample_rate_hz : float, optional
         Sampling rate, Hz (required for arrays and chunk iterables; for files it comes from the reader).
     name : str, optional
@@ -315,7 +333,8 @@ def analyze_noise(source: str | Path | np.ndarray | Iterable[np.ndarray], sample
     reader, reader_params
         See :func:`open_recording`.
     segment : int, float or str, optional
-        Welch segment (see :func:`segment_samples`).
+        Welch segment (see :func:`segment_samples`). Given, it is used as is; by default it is shortened
+        when too few segments are free of events (see :mod:`impactline.noise.events`).
     overlap : float
         Segment overlap as a fraction of the segment (0 to < 1).
     window : str
@@ -346,39 +365,74 @@ def analyze_noise(source: str | Path | np.ndarray | Iterable[np.ndarray], sample
         Length of a chunk iterable, if known (for the default segment).
     chunk_samples : int
         Samples read per chunk.
+    events : {"exclude", "keep"}
+        "exclude" (default): segments holding an event (an excursion beyond ``event_threshold`` robust
+        standard deviations) are left out of the spectrum, so the noise is measured between events;
+        "keep": every segment is averaged.
+    event_threshold : float
+        Excursion threshold, robust standard deviations of the noise.
 
     Returns
     -------
     NoiseAnalysis
     """
+    if events not in EVENT_MODES:
+        raise ValueError(f"events must be one of {', '.join(EVENT_MODES)}, got {events!r}")
+    if not event_threshold > DEFAULT_RELEASE_SIGMA:
+        raise ValueError(f"event threshold must be above the release level of {DEFAULT_RELEASE_SIGMA:g} standard "
+                         f"deviations, got {event_threshold!r}")
     reader_name = "array"
     if isinstance(source, (str, Path)):
         recording = open_recording(source, reader_params, reader=reader)
         reader_name = recording.metadata.get("reader", reader or "")
         fs = float(sample_rate_hz or recording.sample_rate_hz)
         length = recording.n_samples
-        chunks: Iterable[np.ndarray] = recording.iter_chunks(chunk_samples)
         label = name or str(source)
+
+        def read() -> Iterator[np.ndarray]:
+            return recording.iter_chunks(chunk_samples)
     else:
         if sample_rate_hz is None:
             raise ValueError("sample_rate_hz is required when the recording is given as an array or chunks")
         fs = float(sample_rate_hz)
         length = len(source) if isinstance(source, np.ndarray) else n_samples
-        chunks = _chunks_of(source, chunk_samples)
         label = name or "array"
+        if not isinstance(source, np.ndarray) and iter(source) is source and events == "exclude":
+            raise ValueError("events='exclude' reads the recording three times; give an array, a file or a "
+                             "list of chunks instead of a one-shot iterator, or events='keep'")
+
+        def read() -> Iterator[np.ndarray]:
+            return _chunks_of(source, chunk_samples)
     if not 0 <= overlap < 1:
         raise ValueError(f"overlap must be a fraction from 0 to below 1, got {overlap!r}")
     nperseg = segment_samples(segment, fs, length)
     if length is not None and length < nperseg:
         raise InputError(label, f"recording has {length} samples, fewer than one Welch segment ({nperseg})",
                          "give a shorter --segment")
-    acc = WelchAccumulator(fs, nperseg, int(round(overlap * nperseg)), window, detrend)
-    for chunk in chunks:
+    if events == "exclude":
+        found = find_events(read, nperseg, threshold=event_threshold, sample_rate_hz=fs)
+        if found.n_samples < nperseg:
+            raise InputError(label, f"recording has {found.n_samples} samples, fewer than one Welch segment "
+                             f"({nperseg})", "give a shorter --segment")
+        chosen, found.candidates = choose_segment(found.starts, found.ends, found.n_samples, nperseg, overlap,
+                                                  adapt=segment is None)
+        found.segment_requested, found.segment_used = nperseg, chosen
+        nperseg = chosen
+        exclude = found.intervals
+        fix = "give a shorter --segment, a higher --event-threshold, or --events keep"
+    else:
+        found = EventExclusion(mode="keep", segment_requested=nperseg, segment_used=nperseg, sample_rate_hz=fs)
+        exclude = None
+        fix = "give a shorter --segment"
+    acc = WelchAccumulator(fs, nperseg, int(round(overlap * nperseg)), window, detrend, exclude=exclude)
+    for chunk in read():
         acc.update(chunk)
     try:
         spec = acc.result()
     except ValueError as exc:
-        raise InputError(label, str(exc), "give a shorter --segment") from None
+        raise InputError(label, str(exc), fix) from None
+    if events == "keep":
+        found.n_samples = acc.n_seen
     find_mains_peaks(spec, mains)
     fit = fit_noise_model(spec, f_lo_hz=fit_f_lo_hz, f_hi_hz=fit_f_hi_hz, terms=tuple(terms),
                           temperature_k=temperature_k)
@@ -392,7 +446,7 @@ def analyze_noise(source: str | Path | np.ndarray | Iterable[np.ndarray], sample
                               f_hi_hz=nyquist, spectrum=spec, target_duration_s=target_duration_s,
                               material=material)
     return NoiseAnalysis(name=label, spectrum=spec, fit=fit, f_low_hz=f_low, voltage_noise=en,
-                         bandwidth=bandwidth, bessel_order=order, limits=limits, reader=reader_name)
+                         bandwidth=bandwidth, bessel_order=order, limits=limits, reader=reader_name, events=found)
 
 
 # ------------------------------------------------------------------------------------------------ comparison

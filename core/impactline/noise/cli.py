@@ -21,6 +21,7 @@ from . import (
     analyze_noise,
     compare_capacitance,
 )
+from .events import DEFAULT_RELEASE_SIGMA, DEFAULT_THRESHOLD_SIGMA, EVENT_MODES
 from .model import TERM_NAMES, parse_voltage_noise
 from .output import NoiseTableWriter
 
@@ -33,7 +34,8 @@ def register_cli(subparsers: Any) -> None:
     """Add the ``noise`` sub-command (handler :func:`run_noise`)."""
     p = subparsers.add_parser(
         "noise", help="noise spectrum, noise-model fit (C_in), rms vs bandwidth and detection limits",
-        description="Welch spectrum with mains lines masked, fit of A/f + B + C f + D f^2 (input-referred "
+        description="Welch spectrum of the noise between events (segments holding an event are left out) "
+                    "with mains lines masked, fit of A/f + B + C f + D f^2 (input-referred "
                     "current noise), rms noise versus bandwidth, detection limits at a Bessel cutoff, and the "
                     "capacitance a cell adds relative to a reference recording. Quantities take SI prefixes: "
                     "'10 kHz', '5 nV', '5 um', '100 us'.")
@@ -41,12 +43,18 @@ def register_cli(subparsers: Any) -> None:
     p.add_argument("--out", default="impactline-noise", help="output folder for the Parquet tables")
     p.add_argument("--overwrite", action="store_true", help="replace tables already in --out")
     g = p.add_argument_group("spectrum")
-    g.add_argument("--segment", help="Welch segment: samples ('65536') or a duration ('0.5 s'); "
-                                     "default a power of two near 0.5 s")
+    g.add_argument("--segment", help="Welch segment: samples ('65536') or a duration ('0.25 s'); default a power "
+                                     "of two near 0.25 s, shortened when too few segments are free of events")
     g.add_argument("--overlap", default="0.5", help="segment overlap fraction (default 0.5)")
     g.add_argument("--window", default="hann", help="window name (scipy.signal.get_window; default hann)")
     g.add_argument("--mains", default="auto", help="mains frequency: auto (50 or 60 Hz), '50 Hz', '60 Hz' or off")
     g.add_argument("--chunk-samples", type=int, default=1 << 20, help="samples read per chunk")
+    g.add_argument("--events", choices=EVENT_MODES, default="exclude",
+                   help="exclude (default): leave out segments that hold an event, so the noise is measured "
+                        "between events (the file is read three times); keep: average every segment")
+    g.add_argument("--event-threshold", default=f"{DEFAULT_THRESHOLD_SIGMA:g}",
+                   help="an event is an excursion beyond this many robust standard deviations of the noise "
+                        f"(default {DEFAULT_THRESHOLD_SIGMA:g})")
     g = p.add_argument_group("model fit")
     g.add_argument("--fit-min", help="lowest fitted frequency (default 5 spectrum bins)")
     g.add_argument("--fit-max", help="highest fitted frequency (default 0.4 x sampling rate; keep it below the "
@@ -112,7 +120,11 @@ def _options(args: argparse.Namespace) -> tuple[dict[str, Any], dict[str, Any], 
         temperature_k=parse_quantity(args.temperature, "K"), voltage_noise=en, cutoff_hz=q(args.cutoff, "Hz"),
         order=args.order, k_sigma=parse_quantity(args.k_sigma, ""), material=args.material,
         target_duration_s=q(args.target_duration, "s"), chunk_samples=args.chunk_samples,
+        events=args.events, event_threshold=parse_quantity(args.event_threshold, ""),
     )
+    if not options["event_threshold"] > DEFAULT_RELEASE_SIGMA:
+        raise ValueError(f"--event-threshold must be above {DEFAULT_RELEASE_SIGMA:g} (the level where an excursion "
+                         f"ends), got {args.event_threshold!r}")
     if args.material:
         from ..physics import get_material
 
@@ -207,6 +219,7 @@ def format_summary(a: NoiseAnalysis, heading: str = "") -> str:
     lines.append(f"  spectrum: Welch, {s.window} window, {s.nperseg}-sample segments "
                  f"({format_quantity(s.segment_s, 's')}, resolution {format_quantity(s.resolution_hz, 'Hz')}), "
                  f"overlap {s.noverlap}, {s.n_segments} segments (~{s.effective_averages:.0f} independent)")
+    lines.append(_events_line(a))
     if s.mains_peaks:
         total = math.sqrt(sum(p.line_rms_A ** 2 for p in s.mains_peaks))
         harmonics = ",".join(str(p.harmonic) for p in s.mains_peaks)
@@ -226,6 +239,9 @@ def format_summary(a: NoiseAnalysis, heading: str = "") -> str:
         label, unit = names[term]
         flag = "  (at zero)" if fit.at_zero[j] else ""
         lines.append(f"    {label} = {fit.coefficients[j]:.4g} +- {fit.stderr[j]:.2g} {unit}{flag}")
+    if fit.reduced_chi2 > 1.0 + 3.0 * math.sqrt(2.0 / max(fit.n_points - len(fit.terms), 1)) and fit.reduced_chi2 > 3.0:
+        lines.append("    the model misses structure (reduced chi2 >> 1): if the recording was low-pass filtered, "
+                     "give --fit-max well below the filter's corner")
     r, sr = fit.equivalent_resistance()
     lines.append(f"    equivalent resistance 4kT/B: {_pm(r, sr, 'ohm')}")
     corners = fit.corner_frequencies()
@@ -262,6 +278,23 @@ def format_summary(a: NoiseAnalysis, heading: str = "") -> str:
                      f"height, rms {format_quantity(o.noise_rms_A, 'A')}, smallest event "
                      f"{format_quantity(o.min_peak_A, 'A')}")
     return "\n".join(lines)
+
+
+def _events_line(a: NoiseAnalysis) -> str:
+    """What was left out for events, in one line (two when the segment was shortened)."""
+    s, ev = a.spectrum, a.events
+    if ev is None or ev.mode == "keep":
+        return "  events: kept in the spectrum (--events keep)"
+    text = (f"  events: {ev.n_excursions} excursions beyond {ev.threshold_sigma:g} sigma "
+            f"(sigma {format_quantity(ev.sigma_A, 'A')}), {format_quantity(ev.event_time_s, 's')} "
+            f"({100 * ev.event_fraction:.2g} % of the time); {s.n_segments_excluded} of {s.n_segments_total} "
+            f"segments left out ({100 * s.n_segments_excluded / s.n_segments_total:.0f} %), "
+            f"{100 * s.used_samples / s.n_samples:.0f} % of the time used")
+    if ev.shortened:
+        text += (f"\n    segment shortened from {ev.segment_requested} to {ev.segment_used} samples so that "
+                 f"enough segments are free of events ({', '.join(f'{n}: {c}/{t}' for n, t, c in ev.candidates)} "
+                 "clean)")
+    return text
 
 
 def format_comparison(c: CapacitanceComparison) -> str:

@@ -2,8 +2,9 @@
 
 An output folder holds::
 
-    noise_fit.parquet         one row per recording: spectrum settings, model terms with standard errors,
-                              corner frequencies, equivalent resistance, C_in or e_n*C_in
+    noise_fit.parquet         one row per recording: spectrum settings, what was left out for events,
+                              model terms with standard errors, corner frequencies, equivalent
+                              resistance, C_in or e_n*C_in
     noise_limits.parquet      one row per recording: detection limits at the cutoff, optimal cutoff
     noise_bandwidth.parquet   rms noise versus bandwidth (brick wall and Bessel; measured and model)
     noise_spectrum.parquet    the spectra: one row per recording and frequency bin
@@ -60,6 +61,19 @@ FIT_COLUMNS: dict[str, Column] = {
     "segment_s": Column(_F, "s", "Welch segment duration"),
     "overlap_samples": Column("int64", "", "overlap of consecutive segments"),
     "n_segments": Column("int64", "", "segments averaged"),
+    "segments_total": Column("int64", "", "segments on the Welch grid, averaged or left out for holding an event"),
+    "segments_excluded": Column("int64", "", "segments left out because they hold an event"),
+    "segments_excluded_fraction": Column(_F, "", "segments_excluded / segments_total"),
+    "time_used_fraction": Column(_F, "", "share of the recording inside averaged segments"),
+    "segment_requested_samples": Column("int64", "", "Welch segment asked for (or the default) before any "
+                                                    "shortening to keep enough segments free of events"),
+    "events_mode": Column("string", "", "exclude: segments holding events left out; keep: all averaged"),
+    "event_threshold_sigma": Column(_F, "", "excursion threshold, robust standard deviations (exclude mode)"),
+    "event_noise_sigma_A": Column(_F, "A", "robust standard deviation of the samples, median over blocks "
+                                          "(1.4826 MAD)"),
+    "n_event_excursions": Column("int64", "", "excursions found (events, or events close together)"),
+    "event_time_s": Column(_F, "s", "time inside excursions"),
+    "event_time_fraction": Column(_F, "", "share of the recording inside excursions"),
     "effective_averages": Column(_F, "", "independent averages the overlapped estimate is worth"),
     "resolution_Hz": Column(_F, "Hz", "bin spacing"),
     "enbw_Hz": Column(_F, "Hz", "equivalent noise bandwidth of one bin"),
@@ -177,6 +191,7 @@ def fit_row(analysis: Any) -> dict[str, Any]:
         "duration_s": spec.duration_s, "mean_current_A": spec.mean_A, "window": str(spec.window),
         "segment_samples": spec.nperseg, "segment_s": spec.segment_s, "overlap_samples": spec.noverlap,
         "n_segments": spec.n_segments, "effective_averages": spec.effective_averages,
+        **_event_fields(analysis),
         "resolution_Hz": spec.resolution_hz, "enbw_Hz": spec.enbw_hz, "mains_Hz": spec.mains_hz,
         "n_mains_lines": len(spec.mains_peaks),
         "mains_rms_A": math.sqrt(sum(p.line_rms_A ** 2 for p in spec.mains_peaks)),
@@ -200,6 +215,23 @@ def fit_row(analysis: Any) -> dict[str, Any]:
         row[name], row[f"{name}_stderr"] = value, error
     row["voltage_noise_V_per_sqrtHz"] = analysis.voltage_noise
     return {k: _nan_to_none(v) for k, v in row.items()}
+
+
+def _event_fields(analysis: Any) -> dict[str, Any]:
+    """The fit-table columns on segments and events left out (None where keep mode measured nothing)."""
+    spec, ev = analysis.spectrum, getattr(analysis, "events", None)
+    row: dict[str, Any] = {
+        "segments_total": spec.n_segments_total, "segments_excluded": spec.n_segments_excluded,
+        "segments_excluded_fraction": spec.n_segments_excluded / spec.n_segments_total,
+        "time_used_fraction": spec.used_samples / spec.n_samples,
+        "segment_requested_samples": ev.segment_requested if ev is not None else spec.nperseg,
+        "events_mode": ev.mode if ev is not None else "keep",
+    }
+    if ev is not None and ev.mode == "exclude":
+        row.update({"event_threshold_sigma": ev.threshold_sigma, "event_noise_sigma_A": ev.sigma_A,
+                    "n_event_excursions": ev.n_excursions, "event_time_s": ev.event_time_s,
+                    "event_time_fraction": ev.event_fraction})
+    return row
 
 
 def limits_row(analysis: Any) -> dict[str, Any]:

@@ -80,6 +80,13 @@ class Spectrum:
         Number of segments averaged.
     n_samples : int
         Samples read (the tail shorter than a segment step is not used).
+    n_segments_total : int, optional
+        Segments on the grid, averaged or left out for holding an event (default: ``n_segments``).
+    used_samples : int, optional
+        Samples inside the averaged segments (default: ``n_samples``).
+    lag_pairs : ndarray, optional
+        ``lag_pairs[j - 1]``: pairs of averaged segments ``j`` steps apart, for the effective number of
+        averages when segments were left out (None: all consecutive segments were averaged).
     mean_A : float
         Mean current of the samples read, A.
     mask : ndarray of bool
@@ -104,10 +111,22 @@ class Spectrum:
     floor: np.ndarray = field(default=None)  # type: ignore[assignment]
     mains_hz: float = 0.0
     mains_peaks: list[MainsPeak] = field(default_factory=list)
+    n_segments_total: int = None  # type: ignore[assignment]
+    used_samples: int = None  # type: ignore[assignment]
+    lag_pairs: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         if self.mask is None:
             self.mask = np.zeros(self.psd.shape, bool)
+        if self.n_segments_total is None:
+            self.n_segments_total = self.n_segments
+        if self.used_samples is None:
+            self.used_samples = self.n_samples
+
+    @property
+    def n_segments_excluded(self) -> int:
+        """Segments left out of the average (they held an event)."""
+        return self.n_segments_total - self.n_segments
 
     @property
     def resolution_hz(self) -> float:
@@ -138,7 +157,8 @@ class Spectrum:
     @property
     def effective_averages(self) -> float:
         """Number of independent periodograms the overlapped average is worth (see :func:`welch_dof`)."""
-        return effective_averages(self.window_values, self.n_segments, self.nperseg - self.noverlap)
+        return effective_averages(self.window_values, self.n_segments, self.nperseg - self.noverlap,
+                                  lag_pairs=self.lag_pairs)
 
     @property
     def masked_psd(self) -> np.ndarray:
@@ -150,17 +170,30 @@ class Spectrum:
         return out
 
 
-def effective_averages(window: np.ndarray, n_segments: int, step: int) -> float:
+def effective_averages(window: np.ndarray, n_segments: int, step: int, *,
+                       lag_pairs: np.ndarray | None = None) -> float:
     """Effective number of independent averages of an overlapped Welch estimate.
 
     For Gaussian noise with a spectrum flat over a bin, ``Var(P) / S^2 = (1/K) [1 + 2 sum_{j=1}^{K-1}
     (1 - j/K) rho(j)]`` with ``rho(j) = (sum_n w[n] w[n + j*step])^2 / (sum w^2)^2``. Welch (1967), eq. for
     the variance of the overlapped estimate; also Percival & Walden (1993), Spectral Analysis for Physical
     Applications, eq. (292b). Returns ``S^2 / Var(P)``.
+
+    When some segments of the grid were left out, ``K - j`` (the pairs of averaged segments ``j`` steps
+    apart) becomes ``lag_pairs[j - 1]``: the variance of a mean of K periodograms is
+    ``S^2 (K + 2 sum_j n_j rho(j)) / K^2`` whichever pairs are present.
     """
     w = np.asarray(window, float)
     n = len(w)
     energy = float(np.sum(w ** 2))
+    if lag_pairs is not None:
+        total = float(n_segments)
+        for j, pairs in enumerate(lag_pairs, start=1):
+            shift = j * step
+            if shift >= n:
+                break
+            total += 2.0 * float(pairs) * (float(np.dot(w[: n - shift], w[shift:])) / energy) ** 2
+        return n_segments ** 2 / total if n_segments else 0.0
     total = 1.0
     for j in range(1, n_segments):
         shift = j * step
@@ -220,6 +253,10 @@ class WelchAccumulator:
         same computation (detrend, window, ``scipy.fft.rfft``, density scaling, one-sided) on batches of
         segments, about twice as fast; both equal ``scipy.signal.welch`` on the whole array to float
         tolerance (tested).
+    exclude : (starts, ends), optional
+        Sorted, disjoint sample intervals ``[start, end)`` (absolute indices from the first sample fed)
+        that hold events: a segment overlapping any of them is left out of the average (see
+        :mod:`impactline.noise.events`). None or empty: every segment is averaged, exactly as without.
 
     Notes
     -----
@@ -229,7 +266,8 @@ class WelchAccumulator:
     """
 
     def __init__(self, sample_rate_hz: float, nperseg: int, noverlap: int | None = None, window: str = "hann",
-                 detrend: str | bool = "constant", engine: str = "fft"):
+                 detrend: str | bool = "constant", engine: str = "fft",
+                 exclude: tuple[np.ndarray, np.ndarray] | None = None):
         if not sample_rate_hz > 0:
             raise ValueError(f"sample rate must be > 0 Hz, got {sample_rate_hz!r}")
         nperseg = int(nperseg)
@@ -254,9 +292,23 @@ class WelchAccumulator:
         self._freqs = np.fft.rfftfreq(nperseg, 1.0 / self.sample_rate_hz)
         self._buffer = np.empty(0)
         self._sum: np.ndarray | None = None
-        self.n_segments = 0
+        self.n_segments = 0  # averaged
+        self.n_segments_total = 0  # on the grid, averaged or left out
         self.n_seen = 0
         self._sum_x = 0.0  # running sum of samples used, for the mean current
+        self._exclude = None
+        if exclude is not None and len(exclude[0]):
+            starts, ends = (np.asarray(a, dtype=np.int64) for a in exclude)
+            if starts.shape != ends.shape or np.any(ends <= starts) or np.any(starts[1:] < ends[:-1]):
+                raise ValueError("exclude must be sorted, disjoint intervals (starts, ends) with end > start")
+            self._exclude = (starts, ends)
+        # Pairs of averaged segments j = 1, 2, ... steps apart (only overlapping lags matter), the flags
+        # of the last few segments, and the samples the averaged segments cover.
+        self._max_lag = (nperseg - 1) // self.step
+        self._lag_pairs = np.zeros(self._max_lag, dtype=np.int64)
+        self._recent = np.zeros(self._max_lag, dtype=bool)
+        self._last_kept = -1
+        self.used_samples = 0
 
     def update(self, chunk: np.ndarray) -> None:
         """Add the next chunk of samples (A)."""
@@ -269,21 +321,53 @@ class WelchAccumulator:
             self._buffer = buffer.copy()
             return
         count = (len(buffer) - self.noverlap) // self.step
-        used = self.noverlap + count * self.step
+        keep = self._kept(self.n_segments_total, count)
+        # Runs of consecutive averaged segments: each run is one block of samples, so with nothing left out
+        # the whole buffer goes through in one call, exactly as before exclusion existed.
+        edges = np.flatnonzero(np.diff(np.concatenate(([False], keep, [False])).astype(np.int8)))
+        for first, stop in zip(edges[::2], edges[1::2], strict=True):
+            block_sum = self._block_sum(buffer[first * self.step: (stop - 1) * self.step + self.nperseg],
+                                        int(stop - first))
+            if self._sum is None:
+                self._sum = block_sum
+            else:
+                self._sum += block_sum
+        self._count_kept(self.n_segments_total, keep)
+        self._sum_x += float(np.sum(buffer[: count * self.step]))
+        self.n_segments += int(np.count_nonzero(keep))
+        self.n_segments_total += count
+        self._buffer = buffer[count * self.step:].copy()
+
+    def _kept(self, first: int, count: int) -> np.ndarray:
+        """Which of segments ``first .. first + count - 1`` are averaged (overlap no excluded interval)."""
+        if self._exclude is None:
+            return np.ones(count, dtype=bool)
+        seg_start = (first + np.arange(count, dtype=np.int64)) * self.step
+        return ~overlaps_intervals(seg_start, self.nperseg, *self._exclude)
+
+    def _count_kept(self, first: int, keep: np.ndarray) -> None:
+        """Update the pair counts per lag and the samples covered by averaged segments."""
+        flags = np.concatenate((self._recent, keep))
+        m = self._max_lag
+        for j in range(1, m + 1):
+            self._lag_pairs[j - 1] += int(np.count_nonzero(flags[m:] & flags[m - j: len(flags) - j]))
+        if m:
+            self._recent = flags[-m:].copy()
+        index = first + np.flatnonzero(keep)
+        if len(index):
+            previous = np.concatenate(([self._last_kept], index[:-1]))
+            gaps = np.where(previous >= 0, (index - previous) * self.step, self.nperseg)
+            self.used_samples += int(np.sum(np.minimum(gaps, self.nperseg)))
+            self._last_kept = int(index[-1])
+
+    def _block_sum(self, block: np.ndarray, count: int) -> np.ndarray:
+        """Sum of the periodograms of the ``count`` segments of ``block``."""
         if self.engine == "scipy":
-            _, mean_psd = signal.welch(buffer[:used], fs=self.sample_rate_hz, window=self.window,
+            _, mean_psd = signal.welch(block, fs=self.sample_rate_hz, window=self.window,
                                        nperseg=self.nperseg, noverlap=self.noverlap, detrend=self.detrend,
                                        return_onesided=True, scaling="density", average="mean")
-            block_sum = mean_psd * count
-        else:
-            block_sum = self._periodogram_sum(buffer[:used])
-        if self._sum is None:
-            self._sum = block_sum
-        else:
-            self._sum += block_sum
-        self._sum_x += float(np.sum(buffer[: count * self.step]))
-        self.n_segments += count
-        self._buffer = buffer[count * self.step:].copy()
+            return mean_psd * count
+        return self._periodogram_sum(block)
 
     def _periodogram_sum(self, block: np.ndarray) -> np.ndarray:
         """Sum of the one-sided density periodograms of the segments of ``block`` (scipy.signal.welch's
@@ -319,23 +403,37 @@ class WelchAccumulator:
             When fewer samples than one segment were seen.
         """
         if self._sum is None:
+            if self.n_segments_total:
+                raise ValueError(f"all {self.n_segments_total} segments of {self.nperseg} samples hold events; "
+                                 "use a shorter segment, or keep the events")
             raise ValueError(
                 f"only {self.n_seen} samples, fewer than one segment of {self.nperseg}; "
                 "use a shorter segment"
             )
         # Samples covered: all segment steps plus the tail of the last segment.
-        n_used = self.n_segments * self.step + self.noverlap
+        n_used = self.n_segments_total * self.step + self.noverlap
         tail = self._buffer[: self.noverlap]
         mean = (self._sum_x + float(np.sum(tail))) / n_used
+        partial = self.n_segments < self.n_segments_total
         return Spectrum(freqs_hz=self._freqs.copy(), psd=self._sum / self.n_segments,
                         sample_rate_hz=self.sample_rate_hz, nperseg=self.nperseg, noverlap=self.noverlap,
                         window=self.window, detrend=self.detrend, n_segments=self.n_segments,
-                        n_samples=n_used, mean_A=mean)
+                        n_samples=n_used, mean_A=mean, n_segments_total=self.n_segments_total,
+                        used_samples=self.used_samples, lag_pairs=self._lag_pairs.copy() if partial else None)
+
+
+def overlaps_intervals(seg_start: np.ndarray, length: int, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """Whether each span ``[seg_start, seg_start + length)`` overlaps one of the sorted, disjoint intervals
+    ``[starts, ends)`` (sample indices)."""
+    nxt = np.searchsorted(ends, seg_start, side="right")  # first interval ending after the span starts
+    hit = nxt < len(ends)
+    hit[hit] = starts[nxt[hit]] < seg_start[hit] + length
+    return hit
 
 
 def welch_spectrum(chunks: Iterable[np.ndarray] | np.ndarray, sample_rate_hz: float, *, nperseg: int,
                    noverlap: int | None = None, window: str = "hann", detrend: str | bool = "constant",
-                   engine: str = "fft") -> Spectrum:
+                   engine: str = "fft", exclude: tuple[np.ndarray, np.ndarray] | None = None) -> Spectrum:
     """One-sided PSD (A^2/Hz) of a recording given as an array or as an iterable of chunks.
 
     Parameters
@@ -344,14 +442,14 @@ def welch_spectrum(chunks: Iterable[np.ndarray] | np.ndarray, sample_rate_hz: fl
         Current samples, A.
     sample_rate_hz : float
         Sampling rate, Hz.
-    nperseg, noverlap, window, detrend, engine
+    nperseg, noverlap, window, detrend, engine, exclude
         As :class:`WelchAccumulator`.
 
     Returns
     -------
     Spectrum
     """
-    acc = WelchAccumulator(sample_rate_hz, nperseg, noverlap, window, detrend, engine)
+    acc = WelchAccumulator(sample_rate_hz, nperseg, noverlap, window, detrend, engine, exclude)
     if isinstance(chunks, np.ndarray):
         chunks = (chunks,)
     for chunk in chunks:
@@ -362,12 +460,13 @@ def welch_spectrum(chunks: Iterable[np.ndarray] | np.ndarray, sample_rate_hz: fl
 def _harmonic_bins(spec: Spectrum, mains_hz: float, tolerance_hz: float, f_max: float) -> list[tuple[int, int, int]]:
     """(harmonic, first bin, last bin + 1) of the search window around each mains harmonic below f_max."""
     df = spec.resolution_hz
-    # A line between two bins peaks in the nearer one: search the tolerance plus one bin.
-    half = int(math.ceil(tolerance_hz / df)) + 1
+    # A line within the tolerance of the harmonic peaks in the bin nearest to it: search the bins whose
+    # centre lies within the tolerance plus half a bin (at a coarse resolution, one bin; a wider search
+    # would take the rise of 1/f noise next to DC for a line).
     out = []
     for h in range(1, int(f_max // mains_hz) + 1):
-        centre = int(round(h * mains_hz / df))
-        lo, hi = max(1, centre - half), min(len(spec.freqs_hz) - 1, centre + half + 1)
+        lo = max(1, int(math.ceil((h * mains_hz - tolerance_hz) / df - 0.5)))
+        hi = min(len(spec.freqs_hz) - 1, int(math.floor((h * mains_hz + tolerance_hz) / df + 0.5)) + 1)
         if lo < hi:
             out.append((h, lo, hi))
     return out
@@ -379,8 +478,12 @@ def find_mains_peaks(spec: Spectrum, mains_hz: float | str = "auto", *, max_harm
 
     A bin near a harmonic is part of a line when it stands above the local floor by more than the
     ``1 - false_alarm`` quantile of the estimate's own scatter: a Welch bin is ``S * chi2(nu) / nu`` with
-    ``nu = 2 * K_eff`` (Welch 1967). The floor is a running median over 31 bins, corrected for the median
-    of that distribution. Lines are masked over the window's main lobe around each significant bin.
+    ``nu = 2 * K_eff`` (Welch 1967). The floor the largest bin near each harmonic is tested against is the
+    higher of the medians of the 15 bins on each side beyond the main lobe (DC left out; next to DC, the
+    right side's power law extrapolated), corrected for the median of that distribution: a line stands
+    above both sides, while a bin on a steep slope (1/f noise seen at a coarse resolution) stands above one
+    side only. Lines are masked over the window's main lobe around each significant bin; ``spec.floor`` (a
+    running median over 31 bins) replaces them in masked figures.
 
     Parameters
     ----------
@@ -410,17 +513,19 @@ def find_mains_peaks(spec: Spectrum, mains_hz: float | str = "auto", *, max_harm
     f_max = min(nyquist, 2000.0) if max_harmonic_hz is None else min(nyquist, float(max_harmonic_hz))
     candidates = (50.0, 60.0) if mains_hz == "auto" else ((float(mains_hz),) if float(mains_hz) > 0 else ())
     best: tuple[int, float, np.ndarray, list[MainsPeak]] = (0, 0.0, np.zeros(spec.psd.shape, bool), [])
-    ratio = spec.psd / np.maximum(floor, np.finfo(float).tiny)
     df = spec.resolution_hz
     lobe = 2  # Hann main lobe half-width in bins; wider windows still have their peak within +-2 bins
+    tiny = np.finfo(float).tiny
     for f0 in candidates:
         mask = np.zeros(spec.psd.shape, bool)
         peaks = []
         for harmonic, lo, hi in _harmonic_bins(spec, f0, tolerance_hz, f_max):
-            k = lo + int(np.argmax(ratio[lo:hi]))
+            k = lo + int(np.argmax(spec.psd[lo:hi]))
+            ratio = spec.psd[k] * median_factor / max(_line_floor(spec.psd, k, lobe), tiny)
             # A line is a local maximum; the main lobe of a strong neighbour leaning into the window is not.
             local_max = spec.psd[k] >= spec.psd[k - 1] and spec.psd[k] >= spec.psd[min(k + 1, len(mask) - 1)]
-            if ratio[k] <= threshold or not local_max:
+            # At a coarse resolution two harmonics' search windows can share a bin: count a line once.
+            if ratio <= threshold or not local_max or mask[k]:
                 continue
             a, b = max(1, k - lobe), min(len(mask), k + lobe + 1)
             mask[a:b] = True
@@ -428,13 +533,35 @@ def find_mains_peaks(spec: Spectrum, mains_hz: float | str = "auto", *, max_harm
             peaks.append(MainsPeak(harmonic=harmonic, frequency_hz=float(spec.freqs_hz[k]),
                                    excess_psd_A2_per_Hz=float(spec.psd[k] - floor[k]),
                                    line_rms_A=float(math.sqrt(np.sum(excess) * df)),
-                                   significance=float(ratio[k])))
+                                   significance=float(ratio)))
         if len(peaks) > best[0]:
             best = (len(peaks), f0, mask, peaks)
     spec.mask = best[2]
     spec.mains_hz = best[1]
     spec.mains_peaks = best[3]
     return spec
+
+
+def _line_floor(psd: np.ndarray, k: int, lobe: int, width: int = 15, least: int = 3) -> float:
+    """Floor a line at bin ``k`` must stand above: the higher of the medians of up to ``width`` bins left of
+    ``k - lobe`` (from bin 1: DC left out) and right of ``k + lobe``. A line stands above both sides; a bin
+    on a steep slope (1/f noise at a coarse resolution) stands above one only. Next to DC, where the left
+    side has fewer than ``least`` bins, the right side's two halves give the local power law
+    ``psd ~ f^-a`` (``0 <= a <= 2``), extrapolated down to ``k``."""
+    left = psd[max(1, k - lobe - width): max(1, k - lobe)]
+    first = k + lobe + 1
+    right = psd[first: first + width]
+    if len(right) < 2 * least:
+        return math.inf
+    if len(left) >= least:
+        return float(max(np.median(left), np.median(right)))
+    half = len(right) // 2
+    near, far = float(np.median(right[:half])), float(np.median(right[half:]))
+    f_near, f_far = first + (half - 1) / 2.0, first + half + (len(right) - half - 1) / 2.0  # window centres, bins
+    if near <= 0 or far <= 0:
+        return near
+    slope = min(max(math.log(near / far) / math.log(f_far / f_near), 0.0), 2.0)
+    return near * (f_near / k) ** slope
 
 
 def band_rms(spec: Spectrum, f_lo_hz: float = 0.0, f_hi_hz: float | None = None, *, masked: bool = True) -> float:
