@@ -4,7 +4,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from impactline.registry import check_stage_class, default_registry
 from impactline.testing import (
     check_detector_streaming,

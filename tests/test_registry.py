@@ -8,8 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from impactline import Detector, Event, Filter, Param, PluginError, hookimpl
+from impactline import Detector, Filter, Param, PluginError, hookimpl
 from impactline.registry import PluginRegistry
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "docs" / "examples"

@@ -35,6 +35,11 @@ from impactline_plugins.classifiers.cluster import (
     DensityShapes,
     GaussianMixtureShapes,
     KMeansShapes,
+    assignment_entropy,
+    choose_combination,
+    combine_components,
+    elbow,
+    merge_posterior,
     relabel_by_size,
 )
 from impactline_plugins.measures.waveform import WAVEFORM_STAGES, Waveform, bin_average, log_edges, make_waveform_stage
@@ -317,7 +322,9 @@ def test_clustering_recovers_well_separated_shapes(stage):
     out = stage.fit_predict(events)
     assert adjusted_rand_score(classes, out["cluster"]) > 0.95
     assert out["cluster_count"][0] == 4
-    assert stage.selection_.column("chosen").to_pylist().count(True) == 1
+    rows = stage.selection_.to_pylist()
+    for criterion in {r["criterion"] for r in rows}:  # gmm: BIC, then the combination by entropy
+        assert [r["chosen"] for r in rows if r["criterion"] == criterion].count(True) == 1
 
 
 def test_bic_picks_the_true_number_of_gaussian_blobs():
@@ -327,12 +334,130 @@ def test_bic_picks_the_true_number_of_gaussian_blobs():
         X, y = make_blobs(n_samples=600, centers=k, n_features=3, cluster_std=0.6, center_box=(-12, 12),
                           random_state=k)
         table = pa.table({"file": ["f"] * 600, "event_id": np.arange(600), "a": X[:, 0], "b": X[:, 1], "c": X[:, 2]})
-        stage = GaussianMixtureShapes(embedding="features", features=["a", "b", "c"], max_k=8)
+        # combine = "entropy" too: well-separated components barely overlap, the entropy plot is flat and
+        # nothing may be merged.
+        stage = GaussianMixtureShapes(embedding="features", features=["a", "b", "c"], max_k=8, combine="entropy")
         out = stage.fit_predict(table)
         selection = stage.selection_.to_pylist()
-        assert [r["k"] for r in selection] == list(range(1, 9)) and all(r["criterion"] == "bic" for r in selection)
+        bic = [r for r in selection if r["criterion"] == "bic"]
+        assert [r["k"] for r in bic] == list(range(1, 9))
         assert out["cluster_count"][0] == k
         assert adjusted_rand_score(y, out["cluster"]) > 0.98
+        entropy = [r for r in selection if r["criterion"] == "entropy"]
+        assert [r["k"] for r in entropy] == list(range(k, 0, -1))
+        assert {r["decision"] for r in entropy} == {"flat"} and entropy[0]["chosen"]
+
+
+# ------------------------------------------------------------------------------------------------ combining
+def _two_blob_class():
+    """Four classes in 2-D; the fourth is two unit-variance blobs 3 sigma apart (one class, two Gaussians)."""
+    from sklearn.datasets import make_blobs
+
+    centers = np.array([[0.0, 0.0], [12.0, 0.0], [0.0, 12.0], [10.5, 12.0], [13.5, 12.0]])
+    X, blob = make_blobs(n_samples=[150] * 5, centers=centers, cluster_std=1.0, random_state=0)
+    table = pa.table({"file": ["f"] * len(X), "event_id": np.arange(len(X)), "a": X[:, 0], "b": X[:, 1]})
+    return table, np.minimum(blob, 3)
+
+
+def test_entropy_combination_recovers_a_class_made_of_two_gaussians():
+    # Baudry, Raftery, Celeux, Lo & Gottardo (2010), J. Comput. Graph. Stat. 19:332-353: BIC fits the
+    # density (two components for the two-blob class), combining by entropy recovers the classes.
+    table, y = _two_blob_class()
+    stage = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6, combine="entropy")
+    out = stage.fit_predict(table)
+    rows = stage.selection_.to_pylist()
+    k_bic = next(r["k"] for r in rows if r["criterion"] == "bic" and r["chosen"])
+    assert k_bic == 5 > np.unique(y).size
+    assert adjusted_rand_score(y, out["cluster_component"]) < 0.95  # the components alone split a class
+    assert out["cluster_count"][0] == 4
+    assert adjusted_rand_score(y, out["cluster"]) > 0.95
+    entropy = [r for r in rows if r["criterion"] == "entropy"]
+    assert [r["k"] for r in entropy] == [5, 4, 3, 2, 1] and entropy[1]["chosen"]
+    assert entropy[1]["decision"] == "elbow" and entropy[0]["merge"] is None and entropy[0]["merged_events"] == 0
+    # The first merge joins the two halves of class 3 (components numbered by size: look them up).
+    halves = tuple(sorted(np.unique(out["cluster_component"][y == 3])))
+    assert entropy[1]["merge"] == "+".join("{" + str(c) + "}" for c in halves)
+
+    # Exact merging: a combined cluster's posterior is the sum of its components' posteriors.
+    X = embed(table, "features", features=["a", "b"]).X
+    posterior = stage.mixture_.predict_proba(X)[:, stage.component_order_]
+    groups = stage.combination_.groups[1]
+    merged = np.column_stack([posterior[:, list(g)].sum(axis=1) for g in groups])
+    np.testing.assert_allclose(merged, merge_posterior(posterior, groups), rtol=0, atol=0)
+    np.testing.assert_allclose(out["cluster_probability"], merged.max(axis=1), rtol=1e-15)
+    assert adjusted_rand_score(np.argmax(merged, axis=1), out["cluster"]) == 1.0
+    np.testing.assert_allclose(merged.sum(axis=1), 1.0, rtol=1e-12)
+
+
+def _entropy_reference(t):
+    """-sum t ln t over positive entries, written out (no shared code with the module)."""
+    positive = t[t > 0]
+    return float(-np.sum(positive * np.log(positive)))
+
+
+def test_merging_follows_the_direct_entropy_of_every_candidate():
+    # Reference: at each step evaluate every pair by recomputing the entropy of the whole merged assignment
+    # (Baudry et al. 2010: merge the pair whose union gives the lowest entropy) and count the merged events
+    # (most probable cluster before the merge is one of the pair).
+    rng = np.random.default_rng(11)
+    t = rng.dirichlet(np.full(6, 0.3), size=400)
+    combination = combine_components(t)
+    groups = [(j,) for j in range(6)]
+    merged_events = 0
+    assert combination.entropy[0] == pytest.approx(_entropy_reference(t), rel=1e-12)
+    for step in range(1, 6):
+        candidates = []
+        for a in range(len(groups)):
+            for b in range(a + 1, len(groups)):
+                trial = [g for i, g in enumerate(groups) if i not in (a, b)] + [tuple(sorted(groups[a] + groups[b]))]
+                candidates.append((_entropy_reference(merge_posterior(t, trial)), a, b))
+        best, a, b = min(candidates, key=lambda c: c[0])
+        winner = np.argmax(merge_posterior(t, groups), axis=1)
+        merged_events += int(np.sum((winner == a) | (winner == b)))
+        assert combination.merged[step] == (groups[a], groups[b])
+        groups = sorted([g for i, g in enumerate(groups) if i not in (a, b)] + [tuple(sorted(groups[a] + groups[b]))])
+        assert combination.groups[step] == groups
+        assert combination.entropy[step] == pytest.approx(best, rel=1e-12, abs=1e-9)
+        assert assignment_entropy(merge_posterior(t, groups)) == pytest.approx(best, rel=1e-12, abs=1e-9)
+        assert combination.merged_events[step] == merged_events
+    assert combination.counts.tolist() == [6, 5, 4, 3, 2, 1] and combination.entropy[-1] == pytest.approx(0, abs=1e-9)
+    # (a + b) ln(a + b) >= a ln a + b ln b: merging never raises the entropy.
+    assert np.all(np.diff(combination.entropy) <= 1e-9)
+
+
+def test_elbow_is_the_best_two_segment_fit():
+    # Steep then shallow, each exactly linear, meeting at index 3; slight noise on top.
+    x = np.array([0.0, 50, 100, 150, 400, 700, 1000])
+    y = np.where(x <= 150, 40 - 0.25 * x, 2.5 - 0.0025 * (x - 150)) + np.array([0, 0.1, -0.1, 0, 0.05, -0.05, 0])
+    index, rss = elbow(x, y)
+
+    def line_rss(u, v):  # reference: numpy's least-squares polynomial of degree 1
+        return float(np.sum((v - np.polyval(np.polyfit(u, v, 1), u)) ** 2))
+
+    expected = [line_rss(x[:c + 1], y[:c + 1]) + line_rss(x[c:], y[c:]) for c in range(1, 6)]
+    np.testing.assert_allclose(rss[1:6], expected, rtol=1e-9, atol=1e-12)
+    assert np.isnan(rss[0]) and np.isnan(rss[-1]) and index == 1 + int(np.argmin(expected)) == 3
+    with pytest.raises(ValueError, match="at least 3"):
+        elbow(x[:2], y[:2])
+
+
+def test_choice_of_the_number_of_clusters():
+    # Two overlapping components (per-event posteriors near 0.5) and two far ones: one merge, then flat.
+    rng = np.random.default_rng(12)
+    p = rng.uniform(0.3, 0.7, 300)
+    t = np.zeros((900, 4))
+    t[:300, 0], t[:300, 1] = p, 1 - p
+    t[300:600, 2] = 1.0
+    t[600:, 3] = 1.0
+    combination = combine_components(t)
+    assert choose_combination(combination)[::2] == (1, "elbow")
+    assert choose_combination(combination, axis="standard")[::2] == (1, "elbow")
+    assert choose_combination(combination, min_gain=1.0)[::2] == (0, "flat")  # ln 2 nats at most per event
+    assert choose_combination(combination, clusters=2)[::2] == (2, "fixed")
+    assert choose_combination(combination, clusters=9)[::2] == (0, "fixed")
+    assert choose_combination(combine_components(t[:300, :2]))[::2] == (0, "few")
+    with pytest.raises(ValueError, match="axis"):
+        choose_combination(combination, axis="log")
 
 
 def test_density_leaves_outliers_unassigned_also_beyond_the_fitted_sample():
@@ -497,6 +622,33 @@ model = "{model}"
     with pytest.raises(ImpactlineError, match="peak_A"):
         ForestModel.load(model).inputs(result.events.drop_columns(["peak_A"]).append_column(
             "rise_time_s", pa.array(np.ones(result.events.num_rows))))
+
+
+def test_cluster_command_combines_components_and_records_the_entropy(tmp_path, capsys):
+    events, classes = _shape_events(n_per_class=25, seed=4)
+    _write_run(tmp_path / "run", events)
+    argv = ["cluster", str(tmp_path / "run"), "--method", "gmm", "--combine", "entropy", "--embedding", "pca",
+            "--max-k", "5", "--seed", "2"]
+    assert _cli(argv) == 0
+    report = capsys.readouterr().out
+    assert "components combined by entropy (Baudry et al. 2010)" in report and "merged events" in report
+    selection = pq.read_table(tmp_path / "run" / "cluster_selection.parquet").to_pylist()
+    entropy = [r for r in selection if r["criterion"] == "entropy"]
+    k_bic = next(r["k"] for r in selection if r["criterion"] == "bic" and r["chosen"])
+    assert [r["k"] for r in entropy] == list(range(k_bic, 0, -1))
+    assert sum(r["chosen"] for r in entropy) == 1 and len({r["decision"] for r in entropy}) == 1
+    assert all(a["score"] >= b["score"] - 1e-9 for a, b in zip(entropy, entropy[1:], strict=False))
+    clusters = pq.read_table(tmp_path / "run" / "clusters.parquet")
+    chosen = next(r["k"] for r in entropy if r["chosen"])
+    assert clusters.column("cluster_count")[0].as_py() == chosen
+    assert "cluster_component" in clusters.column_names
+    assert _cli(argv) == 0  # same seed, same clusters
+    assert pq.read_table(tmp_path / "run" / "clusters.parquet").select(["cluster", "cluster_probability"]).equals(
+        clusters.select(["cluster", "cluster_probability"]))
+    with pytest.raises(ImpactlineError, match="add --combine entropy"):
+        _cli(["cluster", str(tmp_path / "run"), "--method", "gmm", "--combine", "none", "--clusters", "3"])
+    with pytest.raises(ImpactlineError, match="does not apply"):
+        _cli(["cluster", str(tmp_path / "run"), "--method", "kmeans", "--combine", "entropy"])
 
 
 def test_commands_explain_bad_input(tmp_path):

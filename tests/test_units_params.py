@@ -3,7 +3,6 @@
 import math
 
 import pytest
-
 from impactline import Param, ParameterError
 from impactline.params import resolve_params
 from impactline.units import QuantityError, format_quantity, parse_quantity

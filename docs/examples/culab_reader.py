@@ -15,7 +15,6 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
-
 from impactline import InputError, Param, Reader, Recording, hookimpl
 
 MAGIC = b"CULAB1\n"

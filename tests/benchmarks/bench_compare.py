@@ -108,7 +108,7 @@ def _components(comparison, recording: Path) -> dict:
     filtered signal and the chain's bandwidth (a step response through the filters).
     """
     from impactline.output import file_fingerprint
-    from impactline.runner import chain_info, NoiseMeter, read_checked
+    from impactline.runner import NoiseMeter, chain_info, read_checked
 
     pipeline = comparison.variants[0].pipeline
     with _Clock() as read:

@@ -4,6 +4,7 @@ Run by hand (figures go in the issue note)::
 
     python3 tests/benchmarks/bench_shapes.py quality --files 24 --duration 20
     python3 tests/benchmarks/bench_shapes.py scaling --events 10000 100000 1000000
+    python3 tests/benchmarks/bench_shapes.py scaling --events 1000000 --methods gmm --params '{"combine": "none"}'
 
 or through pytest: ``python3 -m pytest -m benchmark tests/benchmarks/bench_shapes.py -s``.
 
@@ -14,7 +15,10 @@ Quality
     aligned, peak normalized, log spacing up to 5 ms). Detected events are matched to true events by
     interval overlap (each true event to the first detected event overlapping it); the matched events
     are clustered and compared with the true shapes by the adjusted Rand index
-    (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). For the trained classifier the
+    (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). The Gaussian mixture runs with
+    and without combining its components by entropy (Baudry et al. 2010); for the combined runs the
+    report also gives the ARI of every step of the merge hierarchy (``hierarchy``: clusters, ARI), which
+    shows what the best choice of the count would have given. For the trained classifier the
     matched events are split in halves (stratified, seeded): ``impactline train`` on one half, the
     saved model applied to the other.
 Scaling
@@ -41,6 +45,9 @@ import pyarrow.parquet as pq
 import pytest
 
 SHAPES = ("spike", "burst", "step", "blip", "tail_spike")
+#: Clusterings compared (method, parameters); the first is the one the goal is checked on.
+CLUSTERINGS = (("gmm", {}), ("gmm", {"combine": "none"}), ("gmm", {"elbow": "standard"}),
+               ("kmeans", {}), ("density", {}), ("kmeans", {"k": 5}))
 MIN_SNR = 10.0
 PIPELINE = """
 [pipeline]
@@ -103,6 +110,27 @@ def match_truth(events: pa.Table) -> tuple[np.ndarray, dict]:
                    "true_missed": missed, "min_true_snr": min_snr}
 
 
+def _mixture_report(result: dict, y: np.ndarray) -> dict:
+    """Components chosen by BIC, ARI of the components alone, and (combined) the ARI of each merge step."""
+    from sklearn.metrics import adjusted_rand_score
+
+    stage = result["stage"]
+    component = np.asarray(result["events"].column("cluster_component").to_numpy(zero_copy_only=False))
+    out = {"components": int(np.unique(component[component >= 0]).size),
+           "components_ari": float(adjusted_rand_score(y, component))}
+    if stage.combination_ is not None:
+        hierarchy = []
+        for groups in stage.combination_.groups:
+            labels = np.full(component.size, -1)
+            for number, members in enumerate(groups):
+                labels[np.isin(component, members)] = number
+            hierarchy.append((len(groups), round(float(adjusted_rand_score(y, labels)), 4)))
+        rows = [r for r in result["selection"].to_pylist() if r["criterion"] == "entropy"]
+        out.update(hierarchy=hierarchy, decision=rows[0]["decision"],
+                   entropy_nats=[round(r["score"], 4) for r in rows], merged_events=[r["merged_events"] for r in rows])
+    return out
+
+
 def quality(n_files: int = 24, duration_s: float = 20.0, rate: float = 3.0, seed: int = 100,
             work: Path | None = None, jobs: int = 2) -> dict:
     from impactline.pipeline import parse_pipeline
@@ -127,14 +155,16 @@ def quality(n_files: int = 24, duration_s: float = 20.0, rate: float = 3.0, seed
     y = truth[matched].astype(str)
     report = {"simulated_s": simulated, **counts, "classes": {s: int(np.sum(y == s)) for s in SHAPES},
               "clustering": []}
-    for method, params in (("gmm", {}), ("kmeans", {}), ("density", {}), ("kmeans", {"k": 5})):
+    for method, params in CLUSTERINGS:
         t0 = time.perf_counter()
         result = cluster_runs([matched_dir], method, {"seed": 0, **params})
         labels = np.asarray(result["events"].column("cluster").to_numpy(zero_copy_only=False))
-        report["clustering"].append({
-            "method": method, "params": params, "k": int(np.unique(labels[labels >= 0]).size),
-            "ari": float(adjusted_rand_score(y, labels)), "unassigned": int(np.sum(labels < 0)),
-            "seconds": time.perf_counter() - t0, "embedding": result["stage"].embedding_})
+        entry = {"method": method, "params": params, "k": int(np.unique(labels[labels >= 0]).size),
+                 "ari": float(adjusted_rand_score(y, labels)), "unassigned": int(np.sum(labels < 0)),
+                 "seconds": time.perf_counter() - t0, "embedding": result["stage"].embedding_}
+        if method == "gmm":
+            entry.update(_mixture_report(result, y))
+        report["clustering"].append(entry)
 
     # Trained classifier: train on one half, apply the saved model to the other half.
     rng = np.random.default_rng(seed)
@@ -206,11 +236,11 @@ def write_synthetic_run(folder: Path, n_events: int, n_files: int = 1000, points
         pq.write_table(table, folder / "events.parquet" / f"rec{i:04d}.parquet")
 
 
-def _scaling_child(folder: str, method: str) -> None:
+def _scaling_child(folder: str, method: str, params: str = "{}") -> None:
     from impactline.shapes_cli import cluster_runs
 
     started = time.perf_counter()
-    result = cluster_runs([folder], method, {"seed": 0})
+    result = cluster_runs([folder], method, {"seed": 0, **json.loads(params)})
     seconds = time.perf_counter() - started
     labels = np.asarray(result["events"].column("cluster").to_numpy(zero_copy_only=False))
     print(json.dumps({"seconds": seconds, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
@@ -218,16 +248,16 @@ def _scaling_child(folder: str, method: str) -> None:
 
 
 def scaling(sizes=(10_000, 100_000), methods=("gmm", "kmeans", "density"), n_files: int = 1000,
-            work: Path | None = None) -> list[dict]:
+            work: Path | None = None, params: dict | None = None) -> list[dict]:
     work = Path(work or tempfile.mkdtemp(prefix="bench-shapes-scale-"))
     results = []
     for n in sizes:
         folder = work / f"run-{n}"
         write_synthetic_run(folder, n, n_files)
         for method in methods:
-            out = subprocess.run([sys.executable, __file__, "scaling-child", str(folder), method],
-                                 capture_output=True, text=True, check=True)
-            results.append({"n_events": n, "n_files": n_files, "method": method,
+            out = subprocess.run([sys.executable, __file__, "scaling-child", str(folder), method,
+                                  json.dumps(params or {})], capture_output=True, text=True, check=True)
+            results.append({"n_events": n, "n_files": n_files, "method": method, "params": params or {},
                             **json.loads(out.stdout.strip().splitlines()[-1])})
     return results
 
@@ -237,7 +267,7 @@ def scaling(sizes=(10_000, 100_000), methods=("gmm", "kmeans", "density"), n_fil
 def test_cluster_quality_and_trained_accuracy(tmp_path):
     report = quality(n_files=24, duration_s=20.0, work=tmp_path)
     print(json.dumps(report, indent=1, default=str))
-    best = report["clustering"][0]  # gmm with BIC, the default method
+    best = report["clustering"][0]  # gmm with the stage's defaults, the default method
     assert report["min_true_snr"] >= 10
     assert best["ari"] >= 0.85
     assert abs(best["k"] - len(SHAPES)) <= 1
@@ -264,18 +294,20 @@ def main() -> None:
     s = sub.add_parser("scaling")
     s.add_argument("--events", type=int, nargs="+", default=[10_000, 100_000])
     s.add_argument("--methods", nargs="+", default=["gmm", "kmeans", "density"])
+    s.add_argument("--params", default="{}", help="stage parameters as JSON, e.g. '{\"combine\": \"entropy\"}'")
     s.add_argument("--work", default=None)
     c = sub.add_parser("scaling-child")
     c.add_argument("folder")
     c.add_argument("method")
+    c.add_argument("params", nargs="?", default="{}")
     args = parser.parse_args()
     if args.what == "quality":
         print(json.dumps(quality(args.files, args.duration, args.rate, args.seed, args.work), indent=1, default=str))
     elif args.what == "scaling":
-        for row in scaling(args.events, args.methods, work=args.work):
-            print(json.dumps(row))
+        for row in scaling(args.events, args.methods, work=args.work, params=json.loads(args.params)):
+            print(json.dumps(row), flush=True)
     else:
-        _scaling_child(args.folder, args.method)
+        _scaling_child(args.folder, args.method, args.params)
 
 
 if __name__ == "__main__":
