@@ -495,20 +495,30 @@ def cluster_sizes(events: pa.Table, labels: np.ndarray) -> pa.Table:
 def selection_table(rows: Sequence[Mapping[str, Any]]) -> pa.Table:
     """The model-selection report: one row per candidate cluster count.
 
-    Each row: ``method``, ``k``, ``criterion`` (``silhouette``, ``bic``, ``fixed`` or ``density``), ``score``
-    (the criterion's value; for ``density``, the share of events left unassigned; NaN when none), ``better``
-    (``higher`` or ``lower``), ``chosen``.
+    Each row: ``method``, ``k``, ``criterion`` (``silhouette``, ``bic``, ``fixed``, ``density`` or
+    ``entropy``), ``score`` (the criterion's value; for ``density``, the share of events left unassigned;
+    for ``entropy``, the entropy in nats of the combined clustering; NaN when none), ``better`` (``higher``,
+    ``lower`` or, for ``entropy``, ``elbow``), ``chosen``. Rows of a combination of mixture components
+    (``criterion = "entropy"``, one per number of clusters from the mixture's down to 1) also fill
+    ``merged_events`` (cumulative events merged), ``elbow_rss``, ``merge`` (the two clusters joined at this
+    step, as component sets), ``groups`` (the clusters, as component sets) and ``decision`` (how the count
+    was chosen: ``elbow``, ``flat``, ``few`` or ``fixed``); other rows leave them null.
     """
     columns = {
         "method": Column("string", "", "clustering method"),
         "k": Column("int64", "", "number of clusters tried (found, for density clustering)"),
         "criterion": Column("string", "", "how the number of clusters was chosen"),
         "score": Column("float64", "", "value of the criterion"),
-        "better": Column("string", "", "whether a higher or a lower score is better"),
+        "better": Column("string", "", "whether a higher or a lower score is better (entropy: its elbow)"),
         "chosen": Column("bool", "", "the count that was kept"),
+        "merged_events": Column("int64", "", "entropy rows: cumulative number of events in merged clusters"),
+        "elbow_rss": Column("float64", "", "entropy rows: residual sum of squares of the elbow fit at this count"),
+        "merge": Column("string", "", "entropy rows: the two clusters (component sets) merged at this step"),
+        "groups": Column("string", "", "entropy rows: the clusters as sets of mixture components"),
+        "decision": Column("string", "", "entropy rows: elbow, flat (no merge), few (too few components), fixed"),
     }
     schema = schema_for(columns)
-    return pa.Table.from_arrays([pa.array([row[name] for row in rows], type=schema.field(name).type)
+    return pa.Table.from_arrays([pa.array([row.get(name) for row in rows], type=schema.field(name).type)
                                  for name in columns], schema=schema)
 
 

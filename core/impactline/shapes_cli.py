@@ -1,9 +1,12 @@
 """``impactline cluster``, ``train`` and ``classify``: event shapes across one or more run folders.
 
-cluster RUN... [--method gmm|kmeans|density] [--k auto|N] [--seed N]
+cluster RUN... [--method gmm|kmeans|density] [--k auto|N] [--combine none|entropy] [--seed N]
     Clusters the events of all the runs together (one set of cluster numbers across runs) with a
     registered clustering stage, and writes into each run folder ``clusters.parquet`` (per event),
-    ``cluster_prototypes.parquet``, ``cluster_sizes.parquet`` and ``cluster_selection.parquet``.
+    ``cluster_prototypes.parquet``, ``cluster_sizes.parquet`` and ``cluster_selection.parquet``. With
+    ``gmm``, ``--combine entropy`` merges the BIC mixture's components into clusters by the entropy
+    criterion of Baudry et al. (2010); the entropy of each step and the count chosen go to the selection
+    table.
 train RUN... --labels FILE --out MODEL
     Trains a random forest on hand-labelled events (CSV or Parquet: file, event_id, label), prints the
     cross-validated accuracy and confusion matrix, and saves the model as plain arrays (no pickle).
@@ -64,7 +67,8 @@ def register_cli(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--method", default="gmm",
                    help="clustering stage: gmm (BIC; default: best on simulated shapes), kmeans (silhouette), "
                         "density (HDBSCAN) or another installed classifier with a 'cluster' column")
-    p.add_argument("--k", default="auto", help="number of clusters, or 'auto' (default) to choose it")
+    p.add_argument("--k", default="auto",
+                   help="number of clusters (gmm: mixture components), or 'auto' (default) to choose it")
     p.add_argument("--max-k", type=int, default=None, help="largest count tried with --k auto (default 10)")
     p.add_argument("--embedding", choices=EMBEDDINGS, default="pca+features",
                    help="coordinates to cluster (default pca+features)")
@@ -73,6 +77,14 @@ def register_cli(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--components", type=int, default=0,
                    help="PCA components / wavelet coefficients; 0: enough for 95 %% of the variance")
     p.add_argument("--features", default="", help="comma-separated scalar columns for the features embeddings")
+    p.add_argument("--combine", choices=("none", "entropy"), default=None,
+                   help="gmm: merge mixture components into clusters by the entropy criterion (Baudry et al. "
+                        "2010; the stage's default), or keep one cluster per component (none)")
+    p.add_argument("--elbow", choices=("normalized", "standard"), default=None,
+                   help="gmm with --combine entropy: find the elbow of entropy against the cumulative number of "
+                        "merged events (normalized, default) or against the number of clusters (standard)")
+    p.add_argument("--clusters", type=int, default=None,
+                   help="gmm with --combine entropy: merge down to this many clusters instead of the elbow's")
     p.add_argument("--min-cluster-size", type=int, default=None, help="density method: fewest events per cluster")
     p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
@@ -203,11 +215,18 @@ def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
         params["max_k"] = args.max_k
     if args.min_cluster_size is not None:
         params["min_cluster_size"] = args.min_cluster_size
+    for key in ("combine", "elbow", "clusters"):
+        if getattr(args, key, None) is not None:
+            params[key] = getattr(args, key)
     for key in list(params):
         if key not in declared:
-            if key in ("k", "max_k", "min_cluster_size"):
+            if key in ("k", "max_k", "min_cluster_size", "combine", "elbow", "clusters"):
                 raise ImpactlineError(f"--{key.replace('_', '-')} does not apply to --method {args.method}")
             params.pop(key)
+    combine = params.get("combine", declared["combine"].default if "combine" in declared else None)
+    if ("elbow" in params or "clusters" in params) and combine != "entropy":
+        raise ImpactlineError("--elbow and --clusters say how mixture components are combined into clusters; "
+                              "add --combine entropy")
     return params
 
 
@@ -247,10 +266,15 @@ def summarize_clusters(result: dict[str, Any], seconds: float) -> str:
     selection = result.get("selection")
     if selection is not None and selection.num_rows:
         rows = selection.to_pylist()
-        lines.append(f"number of clusters by {rows[0]['criterion']} ({rows[0]['better']} is better):")
-        for row in rows:
-            mark = "  <- chosen" if row["chosen"] else ""
-            lines.append(f"  k = {row['k']:3d}  {row['criterion']} = {row['score']:.6g}{mark}")
+        for criterion in dict.fromkeys(row["criterion"] for row in rows):
+            group = [row for row in rows if row["criterion"] == criterion]
+            if criterion == "entropy":
+                lines.append(_combination_report(group))
+                continue
+            lines.append(f"number of clusters by {criterion} ({group[0]['better']} is better):")
+            for row in group:
+                mark = "  <- chosen" if row["chosen"] else ""
+                lines.append(f"  k = {row['k']:3d}  {criterion} = {row['score']:.6g}{mark}")
     lines.append("cluster   events  share   median duration   median peak")
     for row in proto.to_pylist():
         from .units import format_quantity
@@ -262,6 +286,22 @@ def summarize_clusters(result: dict[str, Any], seconds: float) -> str:
                      f"{format_quantity(peak, 'A') if peak is not None else 'n/a':>12s}")
     lines.append(f"unassigned: {int(np.sum(labels < 0))}; time: {seconds:.2f} s")
     lines.append("written: " + ", ".join(sorted({p.name for p in result["written"]})) + " in each run folder")
+    return "\n".join(lines)
+
+
+_DECISIONS = {"elbow": "elbow of the entropy plot", "flat": "no merge: the entropy plot is flat (components "
+                                                             "barely overlap; see min_gain)",
+              "few": "no merge: too few components for an elbow", "fixed": "count given (--clusters)"}
+
+
+def _combination_report(rows: list[dict[str, Any]]) -> str:
+    """Lines of the summary for the combination of mixture components (selection rows with entropy)."""
+    decision = rows[0].get("decision") or ""
+    lines = [f"components combined by entropy (Baudry et al. 2010); {_DECISIONS.get(decision, decision)}:",
+             "  clusters  entropy (nats)  merged events  merge"]
+    for row in rows:
+        mark = "  <- chosen" if row["chosen"] else ""
+        lines.append(f"  {row['k']:8d}  {row['score']:14.4g}  {row['merged_events']:13d}  {row['merge'] or '-'}{mark}")
     return "\n".join(lines)
 
 

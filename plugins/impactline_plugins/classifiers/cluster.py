@@ -1,5 +1,9 @@
 """Unsupervised grouping of event shapes: k-means, Gaussian mixtures chosen by BIC, density-based (HDBSCAN).
 
+The mixture's components are by default combined into clusters by the entropy criterion of Baudry,
+Raftery, Celeux, Lo & Gottardo (2010) (:func:`combine_components`, :func:`choose_combination`): BIC counts
+the Gaussians a density needs, and a kind of event that is not one Gaussian takes several.
+
 All three embed the events the same way (:func:`impactline.shapes.embed`), number clusters by decreasing
 size (0 is the largest; ties go to the cluster whose first event comes first) and leave events without a
 usable shape unassigned (``cluster = -1``). After :meth:`fit_predict` each stage holds ``selection_``,
@@ -14,6 +18,7 @@ count). Everything random takes ``seed``, so the same events and settings give t
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass, field
 from typing import Any, ClassVar
 
 import numpy as np
@@ -21,10 +26,15 @@ import pyarrow as pa
 from impactline import Classifier, Column, Param
 from impactline.shapes import EMBEDDINGS, SHAPE_TRANSFORMS, Embedding, embed, selection_table
 
-__all__ = ["KMeansShapes", "GaussianMixtureShapes", "DensityShapes", "relabel_by_size", "SILHOUETTE_SAMPLE"]
+__all__ = ["KMeansShapes", "GaussianMixtureShapes", "DensityShapes", "relabel_by_size", "SILHOUETTE_SAMPLE",
+           "COMBINE_METHODS", "ELBOW_AXES", "Combination", "assignment_entropy", "merge_posterior",
+           "combine_components", "elbow", "choose_combination"]
 
 #: Most events the silhouette criterion is computed on.
 SILHOUETTE_SAMPLE = 4000
+#: Ways of turning mixture components into clusters, and axes of the entropy plot.
+COMBINE_METHODS: tuple[str, ...] = ("none", "entropy")
+ELBOW_AXES: tuple[str, ...] = ("normalized", "standard")
 
 _COMMON_PARAMS: dict[str, Param] = {
     "embedding": Param("pca+features", kind=str, choices=EMBEDDINGS,
@@ -167,18 +177,255 @@ def _silhouette(X: np.ndarray, labels: np.ndarray, seed: int) -> float:
     return float(silhouette_score(X, labels, random_state=seed))
 
 
+# ------------------------------------------------------------------------------------------------ combining
+@dataclass
+class Combination:
+    """Clusterings made by merging the components of a Gaussian mixture, from ``K`` clusters down to 1.
+
+    Step ``j`` (``j = 0 ... K - 1``) holds ``K - j`` clusters; step 0 is the mixture itself.
+
+    Attributes
+    ----------
+    groups : list of list of tuple of int
+        ``groups[j]``: the clusters of step ``j``, each a sorted tuple of component indices (clusters in
+        order of their smallest component).
+    entropy : ndarray, shape (K,)
+        Entropy of the soft assignment at each step, ``-sum_i sum_k t_ik ln t_ik`` in nats, summed over the
+        events (``t_ik``: posterior probability of cluster ``k`` for event ``i``).
+    merged_events : ndarray of int, shape (K,)
+        Cumulative number of events merged: at each step, the events whose most probable cluster (before
+        the merge) is one of the two clusters merged; 0 at step 0. The abscissa of the "normalized" plot.
+    merged : list of tuple
+        ``merged[j]`` (``j >= 1``): the two clusters of step ``j - 1`` joined at step ``j``, as tuples of
+        component indices; ``merged[0]`` is ``None``.
+    """
+
+    groups: list[list[tuple[int, ...]]]
+    entropy: np.ndarray
+    merged_events: np.ndarray
+    merged: list[tuple[tuple[int, ...], tuple[int, ...]] | None] = field(default_factory=list)
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Number of clusters at each step, ``K, K - 1, ..., 1``."""
+        return np.array([len(g) for g in self.groups], dtype=np.int64)
+
+
+def assignment_entropy(posterior: np.ndarray) -> float:
+    """Entropy of a soft assignment, ``-sum_i sum_k t_ik ln t_ik`` (nats; ``0 ln 0 = 0``).
+
+    Parameters
+    ----------
+    posterior : ndarray, shape (n_events, n_clusters)
+        Posterior probabilities ``t_ik``; each row sums to 1.
+
+    Returns
+    -------
+    float
+        Total over events, in nats. This is the entropy term of Biernacki, Celeux & Govaert (2000), IEEE
+        Trans. Pattern Anal. Mach. Intell. 22:719-725 (ICL), that Baudry et al. (2010) merge on.
+    """
+    from scipy.special import xlogy
+
+    posterior = np.asarray(posterior, dtype=np.float64)
+    return float(-np.sum(xlogy(posterior, posterior)))
+
+
+def merge_posterior(posterior: np.ndarray, groups: list[tuple[int, ...]]) -> np.ndarray:
+    """Posterior of combined clusters: each cluster's probability is the sum over its components.
+
+    Parameters
+    ----------
+    posterior : ndarray, shape (n_events, n_components)
+    groups : list of tuple of int
+        Components of each combined cluster (a partition of ``range(n_components)``).
+
+    Returns
+    -------
+    ndarray, shape (n_events, len(groups))
+    """
+    posterior = np.asarray(posterior, dtype=np.float64)
+    return np.column_stack([posterior[:, list(g)].sum(axis=1) for g in groups]) if groups \
+        else np.empty((posterior.shape[0], 0))
+
+
+def combine_components(posterior: np.ndarray) -> Combination:
+    """Merge mixture components hierarchically by the entropy criterion of Baudry et al. (2010).
+
+    Baudry, Raftery, Celeux, Lo & Gottardo (2010), "Combining mixture components for clustering",
+    J. Comput. Graph. Stat. 19(2):332-353: at each step the two clusters ``k, l`` whose union lowers the
+    entropy of the soft assignment most are merged, i.e. the pair maximizing
+
+        sum_i [(t_ik + t_il) ln(t_ik + t_il) - t_ik ln t_ik - t_il ln t_il]  (>= 0),
+
+    and the merged cluster's posterior is ``t_ik + t_il`` (the mixture density is unchanged; only the
+    grouping of its components changes). Ties go to the first pair in the order of the clusters' smallest
+    components, so the result is deterministic. Only the pairs with the newly merged cluster are
+    re-evaluated after a merge (the others' gains do not change): ``O(K^2 n)`` in all.
+
+    Parameters
+    ----------
+    posterior : ndarray, shape (n_events, K)
+        Posterior probabilities of the mixture's components for the events the mixture was fitted on.
+
+    Returns
+    -------
+    Combination
+    """
+    from scipy.special import xlogy
+
+    t = np.asarray(posterior, dtype=np.float64)
+    if t.ndim != 2 or t.shape[1] < 1:
+        raise ValueError(f"posterior must be (n_events, n_components), got shape {t.shape}")
+    k = t.shape[1]
+    columns = {j: t[:, j].copy() for j in range(k)}
+    def share(p: np.ndarray) -> float:
+        # A cluster's part of the entropy; summed posteriors may exceed 1 by a rounding error, hence the clip.
+        return max(0.0, float(-np.sum(xlogy(p, p))))
+
+    own = {j: share(columns[j]) for j in range(k)}
+    members = {j: (j,) for j in range(k)}
+
+    def gain(a: int, b: int) -> float:
+        union = columns[a] + columns[b]
+        return float(np.sum(xlogy(union, union))) + own[a] + own[b]
+
+    gains = {(a, b): gain(a, b) for a in range(k) for b in range(a + 1, k)}
+    groups: list[list[tuple[int, ...]]] = [[members[j] for j in range(k)]]
+    merged: list[tuple[tuple[int, ...], tuple[int, ...]] | None] = [None]
+    entropy, merged_events = [sum(own.values())], [0]
+    while len(columns) > 1:
+        # Keys stay sorted by smallest component (a merged cluster keeps the lower key): max() keeps the first.
+        a, b = max(sorted(gains), key=lambda pair: gains[pair])
+        keys = sorted(columns)
+        best = np.asarray(keys)[np.argmax(np.column_stack([columns[j] for j in keys]), axis=1)]
+        merged_events.append(merged_events[-1] + int(np.count_nonzero((best == a) | (best == b))))
+        merged.append((members[a], members[b]))
+        columns[a] = columns[a] + columns.pop(b)
+        own[a] = share(columns[a])
+        del own[b]
+        members[a] = tuple(sorted(members[a] + members.pop(b)))
+        gains = {pair: value for pair, value in gains.items() if b not in pair}
+        for c in columns:
+            if c != a:
+                gains[(min(a, c), max(a, c))] = gain(min(a, c), max(a, c))
+        entropy.append(sum(own.values()))
+        groups.append([members[j] for j in sorted(columns)])
+    return Combination(groups=groups, entropy=np.asarray(entropy),
+                       merged_events=np.asarray(merged_events, dtype=np.int64), merged=merged)
+
+
+def _line_rss(x: np.ndarray, y: np.ndarray) -> float:
+    """Residual sum of squares of the least-squares line through ``(x, y)`` (0 for two points)."""
+    design = np.column_stack([np.ones_like(x), x])
+    coef = np.linalg.lstsq(design, y, rcond=None)[0]
+    return float(np.sum((y - design @ coef) ** 2))
+
+
+def elbow(x: np.ndarray, y: np.ndarray) -> tuple[int, np.ndarray]:
+    """Change point of a two-segment piecewise-linear least-squares fit to the points ``(x, y)``.
+
+    For each interior point ``c`` a line is fitted to points ``0 ... c`` and another to ``c ... m - 1``
+    (the change point belongs to both); the ``c`` with the smallest total residual sum of squares wins
+    (the first on ties). This is the automatic choice of Baudry et al. (2010), sec. on choosing the
+    number of clusters (two-part piecewise linear regression on the entropy plot; the exact form of the
+    fit is from memory: two separate least-squares lines sharing the change point).
+
+    Parameters
+    ----------
+    x, y : ndarray, shape (m,)
+        Abscissae and ordinates in step order; ``m >= 3``.
+
+    Returns
+    -------
+    index : int
+        The change point, ``1 <= index <= m - 2``.
+    rss : ndarray, shape (m,)
+        Total residual sum of squares for each candidate (NaN at both ends).
+    """
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    if x.shape != y.shape or x.ndim != 1 or x.size < 3:
+        raise ValueError(f"the elbow fit needs at least 3 points (x and y of equal length), got {x.shape}, {y.shape}")
+    rss = np.full(x.size, math.nan)
+    for c in range(1, x.size - 1):
+        rss[c] = _line_rss(x[:c + 1], y[:c + 1]) + _line_rss(x[c:], y[c:])
+    return int(np.nanargmin(rss)), rss
+
+
+def choose_combination(combination: Combination, axis: str = "normalized", min_gain: float = 0.0,
+                       clusters: int = 0) -> tuple[int, np.ndarray, str]:
+    """Which step of a :class:`Combination` to keep.
+
+    Parameters
+    ----------
+    combination : Combination
+    axis : {"normalized", "standard"}
+        Abscissa of the entropy plot the elbow is fitted on: the cumulative number of merged events
+        ("normalized", the rescaled plot Baudry et al. 2010 recommend in their abstract) or the number of
+        clusters ("standard").
+    min_gain : float
+        Least mean entropy decrease per merged event, in nats, over the merges before the elbow for them to
+        count as joining parts of one cluster. Not from the paper: with well-separated components every
+        merge costs almost nothing, the entropy plot is flat, and the elbow of a flat plot is arbitrary; this
+        keeps the mixture's components then. 0 disables the check.
+    clusters : int
+        Number of clusters wanted; 0 chooses it (elbow). Larger than the number of components: all kept.
+
+    Returns
+    -------
+    step : int
+        Number of merges (index into ``combination.groups``).
+    rss : ndarray, shape (K,)
+        Elbow fit residual sum of squares per step (NaN where not a candidate or not fitted).
+    reason : str
+        ``elbow``, ``flat`` (elbow rejected by ``min_gain``), ``few`` (fewer than 3 steps: no elbow can be
+        fitted; the components are kept) or ``fixed``.
+    """
+    k = combination.entropy.size
+    rss = np.full(k, math.nan)
+    if clusters:
+        return k - min(clusters, k), rss, "fixed"
+    if k < 3:
+        return 0, rss, "few"
+    if axis == "normalized":
+        x = combination.merged_events.astype(np.float64)
+    elif axis == "standard":
+        x = combination.counts.astype(np.float64)
+    else:
+        raise ValueError(f"axis must be 'normalized' or 'standard', got {axis!r}")
+    step, rss = elbow(x, combination.entropy)
+    drop = combination.entropy[0] - combination.entropy[step]
+    per_event = drop / max(int(combination.merged_events[step]), 1)
+    if per_event < min_gain:
+        return 0, rss, "flat"
+    return step, rss, "elbow"
+
+
 class GaussianMixtureShapes(_ShapeClusterer):
-    """Gaussian mixture on the embedded shapes; the number of components chosen by the BIC.
+    """Gaussian mixture on the embedded shapes; components by BIC, optionally combined into clusters.
 
     With ``k = 0`` mixtures of 1 to ``max_k`` full-covariance components are fitted by EM
     (:class:`sklearn.mixture.GaussianMixture`) and the one with the lowest Bayesian information
-    criterion, BIC = -2 ln L + p ln n, is kept (Schwarz 1978, Annals of Statistics 6:461-464). Each
-    event goes to its most probable component; ``cluster_probability`` is that posterior probability.
+    criterion, BIC = -2 ln L + p ln n, is kept (Schwarz 1978, Annals of Statistics 6:461-464).
+
+    BIC counts the components needed to describe the density, and a class whose points do not form one
+    Gaussian takes several. With ``combine = "entropy"`` the components are then merged hierarchically,
+    each time the pair whose union lowers the entropy of the posterior assignment most, and the number of
+    clusters is the elbow of the entropy plot (Baudry, Raftery, Celeux, Lo & Gottardo 2010, J. Comput.
+    Graph. Stat. 19:332-353; :func:`combine_components`, :func:`choose_combination`). A combined cluster's
+    posterior is the sum of its components' posteriors.
+
+    Each event goes to its most probable cluster; ``cluster_probability`` is that posterior probability
+    and ``cluster_component`` its most probable mixture component (numbered by size, like clusters).
+    After :meth:`fit_predict`, ``mixture_`` is the fitted :class:`~sklearn.mixture.GaussianMixture`,
+    ``component_order_`` the mixture's component of each component number (``posterior[:, order]``) and
+    ``combination_`` the :class:`Combination` (None without ``combine``).
     """
 
     name: ClassVar[str] = "gmm"
-    summary: ClassVar[str] = "Gaussian mixture on event shapes; number of components by BIC"
-    version: ClassVar[str] = "1"
+    summary: ClassVar[str] = "Gaussian mixture on event shapes; components by BIC, optionally combined by entropy"
+    version: ClassVar[str] = "2"
     method: ClassVar[str] = "gmm"
     params: ClassVar[dict[str, Param]] = {
         **_COMMON_PARAMS,
@@ -190,13 +437,27 @@ class GaussianMixtureShapes(_ShapeClusterer):
         "reg_covar": Param(1e-4, low=0, low_inclusive=False,
                            doc="variance added to each covariance diagonal (coordinates are of order 1)"),
         "fit_sample": Param(20_000, kind=int, low=0, doc="most events the mixtures are fitted on (0: all)"),
+        "combine": Param("entropy", kind=str, choices=COMBINE_METHODS,
+                         doc="merge components into clusters by the entropy criterion (Baudry et al. 2010), "
+                             "or keep one cluster per component"),
+        "elbow": Param("normalized", kind=str, choices=ELBOW_AXES,
+                       doc="entropy plot the elbow is found on: against merged events (normalized) or clusters"),
+        "min_gain": Param(0.01, low=0,
+                          doc="least mean entropy decrease per merged event before the elbow, in nats "
+                              "(0.01: about 1.4 % of them split 50:50); below it the components are kept"),
+        "clusters": Param(0, kind=int, low=0, high=100,
+                          doc="with combine: number of clusters to merge into; 0 chooses it by the elbow"),
     }
     columns: ClassVar[dict[str, Column]] = {
         "cluster": _CLUSTER_COLUMN,
-        "cluster_probability": Column("float64", "", "posterior probability of the assigned component"),
+        "cluster_probability": Column("float64", "", "posterior probability of the assigned cluster"),
+        "cluster_component": Column("int64", "", "most probable mixture component, 0 = largest (before combining)"),
         "cluster_count": _COUNT_COLUMN,
         "cluster_bic": Column("float64", "", "BIC of the mixture kept, on the fitted events (same on every row)"),
     }
+    combination_: Combination | None = None
+    mixture_: Any = None
+    component_order_: np.ndarray | None = None
 
     def _cluster(self, emb: Embedding):
         from sklearn.mixture import GaussianMixture
@@ -215,10 +476,51 @@ class GaussianMixtureShapes(_ShapeClusterer):
         criterion = "fixed" if self.k else "bic"
         rows = [{"method": self.method, "k": f[0], "criterion": criterion, "score": f[2], "better": "lower",
                  "chosen": i == best} for i, f in enumerate(fits)]
+        # Components renumbered by size (0 = most events), so that cluster_component and the groups in the
+        # selection table use the same numbers.
         posterior = model.predict_proba(X)
+        order = _size_order(np.argmax(posterior, axis=1), k)
+        posterior = posterior[:, order]
+        self.mixture_, self.component_order_ = model, order
+        component = np.argmax(posterior, axis=1)
+        self.combination_ = None
+        if self.combine == "entropy":
+            combination = combine_components(posterior[fit_rows])
+            step, rss, reason = choose_combination(combination, self.elbow, self.min_gain, self.clusters)
+            self.combination_ = combination
+            rows += _combination_rows(self.method, combination, step, rss, reason)
+            posterior = merge_posterior(posterior, combination.groups[step])
         labels = np.argmax(posterior, axis=1)
         return labels, {"cluster_probability": posterior[np.arange(X.shape[0]), labels],
-                        "cluster_bic": np.full(X.shape[0], bic)}, rows
+                        "cluster_component": component, "cluster_bic": np.full(X.shape[0], bic)}, rows
+
+
+def _combination_rows(method: str, combination: Combination, step: int, rss: np.ndarray,
+                      reason: str) -> list[dict[str, Any]]:
+    """Selection-table rows of a combination: one per number of clusters, from the mixture's down to 1."""
+    rows = []
+    for j, groups in enumerate(combination.groups):
+        pair = combination.merged[j]
+        rows.append({"method": method, "k": len(groups), "criterion": "entropy", "decision": reason,
+                     "score": float(combination.entropy[j]), "better": "elbow", "chosen": j == step,
+                     "merged_events": int(combination.merged_events[j]),
+                     "elbow_rss": None if math.isnan(rss[j]) else float(rss[j]),
+                     "merge": None if pair is None else "+".join(_group_text(g) for g in pair),
+                     "groups": " ".join(_group_text(g) for g in groups)})
+    return rows
+
+
+def _size_order(labels: np.ndarray, k: int) -> np.ndarray:
+    """Component indices by decreasing number of events (ties: first appearance first; empty ones last)."""
+    counts = np.bincount(labels, minlength=k)
+    first = np.full(k, labels.size)
+    seen, where = np.unique(labels, return_index=True)
+    first[seen] = where
+    return np.lexsort((np.arange(k), first, -counts))
+
+
+def _group_text(group: tuple[int, ...]) -> str:
+    return "{" + ",".join(str(c) for c in group) + "}"
 
 
 class DensityShapes(_ShapeClusterer):
