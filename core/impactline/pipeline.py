@@ -325,27 +325,15 @@ def parse_pipeline(text: str, source: str = "<pipeline>", base_dir: Path | None 
     if "classifier" in data:
         classifier_spec = _stage_spec(data["classifier"], "classifier", "classifier", registry, problem)
 
-    sizing = None
-    if "sizing" in data:
-        raw = _section(data, "sizing", problem)
-        try:
-            sizing = resolve_params("[sizing]", _SIZING_KEYS, raw)
-        except ParameterError as exc:
-            problem(f"sizing.{exc.key}", exc.reason)
-    collision_rate = None
-    if "collision_rate" in data:
-        raw = _section(data, "collision_rate", problem)
-        try:
-            collision_rate = resolve_params("[collision_rate]", _RATE_KEYS, raw)
-        except ParameterError as exc:
-            problem(f"collision_rate.{exc.key}", exc.reason)
-        else:
-            for key in ("electrode_radius", "concentration"):
-                if collision_rate[key] is None:
-                    problem(f"collision_rate.{key}", "required to predict the diffusion-limited rate")
-            if collision_rate["particle_diameter"] is None and "sizing" not in data:
-                problem("collision_rate.particle_diameter",
-                        "give the particle diameter, or add a [sizing] section so the measured median is used")
+    sizing = _settings_section(data, "sizing", _SIZING_KEYS, problem)
+    collision_rate = _settings_section(data, "collision_rate", _RATE_KEYS, problem)
+    if collision_rate is not None:
+        for key in ("electrode_radius", "concentration"):
+            if collision_rate[key] is None:
+                problem(f"collision_rate.{key}", "required to predict the diffusion-limited rate")
+        if collision_rate["particle_diameter"] is None and "sizing" not in data:
+            problem("collision_rate.particle_diameter",
+                    "give the particle diameter, or add a [sizing] section so the measured median is used")
     if problems:
         raise PipelineError(problems)
     pipeline = Pipeline(
@@ -379,6 +367,17 @@ def _check_column_clashes(pipeline: Pipeline) -> None:
             owners[column] = label
     if problems:
         raise PipelineError(problems)
+
+
+def _settings_section(data: dict, key: str, declared: dict[str, Param], problem) -> dict[str, Any] | None:
+    """Resolve a plain settings section ([sizing], [collision_rate]); None when absent or invalid."""
+    if key not in data:
+        return None
+    try:
+        return resolve_params(f"[{key}]", declared, _section(data, key, problem))
+    except ParameterError as exc:
+        problem(f"{key}.{exc.key}", exc.reason)
+        return None
 
 
 def _section(data: dict, key: str, problem) -> dict:
