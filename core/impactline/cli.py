@@ -182,16 +182,13 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     out = Path(args.out)
     recordings = out / "recordings"
     recordings.mkdir(parents=True, exist_ok=True)
-    truth_counts = {}
     print(f"Copper-ink batch check: simulating recordings in {recordings}")
-    for spec_name, spec in copper_ink_demo_specs().items():
-        target = recordings / f"{spec_name}.bin"
-        result = simulate(spec, target)
-        truth_counts[target.name] = result.n_events if hasattr(result, "n_events") else None
+    written = [simulate(spec, recordings / f"{name}.bin").data_path
+               for name, spec in copper_ink_demo_specs().items()]
     pipeline = load_pipeline(pipeline_path("default"))
-    progress = Progress(len(truth_counts), quiet=args.quiet)
+    progress = Progress(len(written), quiet=args.quiet)
     started = time.perf_counter()
-    result = run(pipeline, sorted(recordings.glob("*.bin")), out / "run", jobs=args.jobs, overwrite=True,
+    result = run(pipeline, sorted(written), out / "run", jobs=args.jobs, overwrite=True,
                  resume=False, command=sys.argv, on_file=progress.file_done, on_progress=progress.samples)
     print(summarize_run(result, pipeline.name, time.perf_counter() - started))
     print(_demo_truth_table(result, recordings))

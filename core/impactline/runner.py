@@ -115,7 +115,8 @@ class _History:
     def trim(self, keep_from: int) -> None:
         drop = min(max(0, keep_from - self.start), self.data.size)
         if drop:
-            self.data = self.data[drop:].copy()
+            # A view is enough: the next append builds a new array and releases the old one.
+            self.data = self.data[drop:]
             self.start += drop
 
     def get(self, start: int, end: int) -> np.ndarray:
@@ -432,12 +433,10 @@ def _half_height_crossing(rising: np.ndarray) -> float:
 
 def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int, duration: float,
               noise_rms: float, table: pa.Table, material, pipeline_hash: str, seconds: float) -> dict[str, Any]:
-    from scipy.stats import chi2
+    from .physics import poisson_rate_interval
 
     n_events = table.num_rows
-    # Exact (Garwood 1936) 95 % interval of a Poisson count, divided by the observation time.
-    low = 0.5 * chi2.ppf(0.025, 2 * n_events) / duration if n_events else 0.0
-    high = 0.5 * chi2.ppf(0.975, 2 * (n_events + 1)) / duration
+    rate = poisson_rate_interval(n_events, duration)  # exact (Garwood 1936) 95 % interval
     median_diameter = float("nan")
     if material is not None and n_events:
         diameters = np.asarray(table.column("diameter_m").to_numpy(zero_copy_only=False), dtype=float)
@@ -454,8 +453,8 @@ def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int
         "noise_rms_A": noise_rms,
         "n_events": n_events,
         "event_rate_per_s": n_events / duration,
-        "event_rate_low_per_s": float(low),
-        "event_rate_high_per_s": float(high),
+        "event_rate_low_per_s": float(rate.low_per_s),
+        "event_rate_high_per_s": float(rate.high_per_s),
         "median_diameter_m": median_diameter,
         "reader_metadata": json.dumps(recording.metadata, sort_keys=True, default=str),
         "status": "ok",
