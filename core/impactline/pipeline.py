@@ -50,6 +50,7 @@ import json
 import os
 import tomllib
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
@@ -187,9 +188,12 @@ class Pipeline:
                               self.local_plugins},
         }
 
-    @property
+    @cached_property
     def hash(self) -> str:
-        """SHA-256 of the resolved pipeline: changes when any stage, setting or plugin version changes."""
+        """SHA-256 of the resolved pipeline: changes when any stage, setting or plugin version changes.
+
+        Computed once: a pipeline is not changed after loading, and runs read the hash for every file.
+        """
         canonical = json.dumps(self.resolved(), sort_keys=True, default=str)
         return hashlib.sha256(canonical.encode()).hexdigest()
 
