@@ -306,3 +306,17 @@ def test_causal_filter_delay_is_subtracted_from_event_times(tmp_path):
     assert row["filter_delay_s"] > 0
     onsets = np.asarray(result.events.column("start_index").to_pylist())
     assert np.max(np.abs(onsets - starts)) <= 6
+
+
+def test_run_folder_with_shapes_and_labels_reads_back(tmp_path):
+    # labels.parquet is joined onto events that carry a fixed-size list column (shape): Arrow's own join
+    # cannot carry such columns, so the run folder must still read back whole on a resumed run.
+    x, starts = _recording(n=200_000)
+    path = _write_npy(tmp_path / "a.npy", x)
+    text = PIPELINE + '\n[[measure]]\nuse = "waveform"\n\n[classifier]\nuse = "kmeans"\n'
+    first = run(parse_pipeline(text), [path], tmp_path / "run")
+    again = run(parse_pipeline(text), [path], tmp_path / "run")
+    assert again.files.column("status").to_pylist() == ["skipped"]
+    events = read_events(tmp_path / "run")
+    assert events.num_rows == len(starts) and "shape" in events.column_names and "cluster" in events.column_names
+    assert events.column("event_id").to_pylist() == first.events.column("event_id").to_pylist()

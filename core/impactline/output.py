@@ -22,6 +22,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -29,7 +30,7 @@ from .stages import Column
 
 __all__ = [
     "CONTRACT_COLUMNS", "FILE_COLUMNS", "arrow_type", "schema_for", "table_from_rows", "write_table_atomic",
-    "part_name", "read_part_metadata", "read_events", "file_fingerprint",
+    "part_name", "read_part_metadata", "read_events", "join_sidecar", "file_fingerprint",
 ]
 
 EVENTS_DIR = "events.parquet"
@@ -165,10 +166,27 @@ def read_events(run_dir: str | Path) -> pa.Table:
     table = pa.concat_tables(tables, promote_options="default")
     labels_path = run_dir / LABELS_TABLE
     if labels_path.exists():
-        labels = pq.read_table(labels_path)
-        table = table.join(labels, keys=["file", "event_id"], join_type="left outer")
-        table = table.sort_by([("file", "ascending"), ("event_id", "ascending")])
+        table = join_sidecar(table, pq.read_table(labels_path))
     return table
+
+
+def join_sidecar(events: pa.Table, sidecar: pa.Table) -> pa.Table:
+    """Left-join a per-event sidecar on ``(file, event_id)``; its columns replace same-named ones.
+
+    The row order of ``events`` is kept; events the sidecar does not cover get nulls. (Arrow's own join
+    cannot carry fixed-size list columns, so only the keys are joined and the columns are taken by row.)
+    """
+    extra = [c for c in sidecar.column_names if c not in ("file", "event_id", "run")]
+    events = events.drop_columns([c for c in extra if c in events.column_names])
+    left = pa.table({"file": events.column("file"), "event_id": events.column("event_id"),
+                     "__left": pa.array(np.arange(events.num_rows, dtype=np.int64))})
+    right = pa.table({"file": sidecar.column("file"), "event_id": sidecar.column("event_id"),
+                      "__right": pa.array(np.arange(sidecar.num_rows, dtype=np.int64))})
+    keys = left.join(right, keys=["file", "event_id"], join_type="left outer").sort_by("__left")
+    take = keys.column("__right")
+    for name in extra:
+        events = events.append_column(sidecar.schema.field(name), sidecar.column(name).take(take))
+    return events
 
 
 def file_fingerprint(path: Path, extra_files: list[Path] | tuple = ()) -> str:

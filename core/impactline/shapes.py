@@ -39,7 +39,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import ImpactlineError
-from .output import EVENTS_DIR, read_events, schema_for, write_table_atomic
+from .output import EVENTS_DIR, join_sidecar, read_events, schema_for, write_table_atomic
 from .stages import Column
 
 __all__ = [
@@ -530,25 +530,6 @@ def write_sidecar(table: pa.Table, run_dir: str | Path, name: str, metadata: Map
     path = Path(run_dir) / name
     write_table_atomic(table.replace_schema_metadata(merged), path)
     return path
-
-
-def join_sidecar(events: pa.Table, sidecar: pa.Table) -> pa.Table:
-    """Left-join a per-event sidecar on ``(file, event_id)``; its columns replace same-named ones.
-
-    The row order of ``events`` is kept; events the sidecar does not cover get nulls. (Arrow's own join
-    cannot carry fixed-size list columns, so only the keys are joined and the columns are taken by row.)
-    """
-    extra = [c for c in sidecar.column_names if c not in ("file", "event_id", "run")]
-    events = events.drop_columns([c for c in extra if c in events.column_names])
-    left = pa.table({"file": events.column("file"), "event_id": events.column("event_id"),
-                     "__left": pa.array(np.arange(events.num_rows, dtype=np.int64))})
-    right = pa.table({"file": sidecar.column("file"), "event_id": sidecar.column("event_id"),
-                      "__right": pa.array(np.arange(sidecar.num_rows, dtype=np.int64))})
-    keys = left.join(right, keys=["file", "event_id"], join_type="left outer").sort_by("__left")
-    take = keys.column("__right")
-    for name in extra:
-        events = events.append_column(sidecar.schema.field(name), sidecar.column(name).take(take))
-    return events
 
 
 def read_events_with(run_dir: str | Path, sidecars: Sequence[str] = SIDECAR_TABLES) -> pa.Table:
