@@ -121,6 +121,7 @@ from .runner import (
     describe_error,
     events_schema,
     expand_inputs,
+    package_versions,
     read_checked,
 )
 from .stages import Column, FilterInfo
@@ -1779,18 +1780,6 @@ def _files_table(results: Sequence[RecordingComparison], identity: str) -> pa.Ta
                            schema_for(COMPARE_FILE_COLUMNS, {"impactline.comparison_hash": identity}))
 
 
-def _versions() -> dict[str, str | None]:
-    import importlib.metadata as md
-
-    versions: dict[str, str | None] = {}
-    for package in ("numpy", "scipy", "pyarrow"):
-        try:
-            versions[package] = md.version(package)
-        except md.PackageNotFoundError:
-            versions[package] = None
-    return versions
-
-
 def _record(comparison: Comparison, paths, command, started_at: datetime, extra: Mapping[str, Any]) -> dict:
     shared, separate = comparison.filter_passes()
     return {
@@ -1801,7 +1790,7 @@ def _record(comparison: Comparison, paths, command, started_at: datetime, extra:
                      for v in comparison.variants],
         "filter_sharing": {"stages_run_per_file": shared, "stages_without_sharing": separate,
                            "tree": comparison.filter_tree_summary()},
-        "packages": _versions(), "python": sys.version.split()[0],
+        "packages": package_versions(), "python": sys.version.split()[0],
         "command": list(command) if command is not None else None, "inputs": [str(p) for p in paths],
         "started": started_at.isoformat(), "finished": datetime.now(UTC).isoformat(), **extra,
     }

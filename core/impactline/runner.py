@@ -694,16 +694,21 @@ def _classify(pipeline: Pipeline, events: pa.Table, out: Path | None) -> pa.Tabl
     return events
 
 
-def _run_record(pipeline: Pipeline, paths: list[Path], command, started_at: datetime,
-                results: list[FileResult]) -> dict[str, Any]:
+def package_versions() -> dict[str, str | None]:
+    """Versions of the packages that shape results, for run records (None when not installed)."""
     import importlib.metadata as md
 
-    versions = {}
+    versions: dict[str, str | None] = {}
     for package in ("numpy", "scipy", "pyarrow", "pywavelets", "scikit-learn", "pluggy", "h5py"):
         try:
             versions[package] = md.version(package)
         except md.PackageNotFoundError:
             versions[package] = None
+    return versions
+
+
+def _run_record(pipeline: Pipeline, paths: list[Path], command, started_at: datetime,
+                results: list[FileResult]) -> dict[str, Any]:
     return {
         "impactline_version": __version__,
         "pipeline_source": pipeline.source,
@@ -711,7 +716,7 @@ def _run_record(pipeline: Pipeline, paths: list[Path], command, started_at: date
         "pipeline_hash": pipeline.hash,
         "pipeline_resolved": pipeline.resolved(),
         "plugins": pipeline.registry.plugin_versions,
-        "packages": versions,
+        "packages": package_versions(),
         "python": sys.version,
         "platform": platform.platform(),
         "command": list(command) if command is not None else None,

@@ -43,7 +43,7 @@ import pyarrow as pa
 from scipy import linalg, optimize, signal
 
 from .errors import ImpactlineError
-from .output import schema_for, write_table_atomic
+from .output import schema_for, write_json_atomic, write_table_atomic
 from .physics import charge_from_diameter, diffusion_limited_collision_rate, get_material, water_viscosity
 from .stages import Column
 from .units import QuantityError, format_quantity, parse_quantity
@@ -1104,9 +1104,7 @@ def simulate(spec: SimulationSpec, out_path: str | Path, *, block_size: int = 1 
                 "truth": truth_path.name, "amplifier_delay_s": catalogue.delay_s, "spec": spec.to_dict()}
     if data_path.suffix.lower() == ".bin":
         settings.update(dtype=file_dtype.str, byte_order="little")
-    temporary = sidecar.parent / f".{sidecar.name}.{os.getpid()}.tmp"
-    temporary.write_text(json.dumps(settings, indent=2) + "\n", encoding="utf-8")
-    os.replace(temporary, sidecar)
+    write_json_atomic(settings, sidecar)
     write_table_atomic(_truth_from(spec, catalogue, rms, {"data_file": data_path.name}), truth_path)
     counts = {shape: sum(1 for row in catalogue.rows if row["shape"] == shape) for shape in SHAPES}
     return SimulationResult(data_path, sidecar, truth_path, spec, total, len(catalogue.rows), catalogue.n_arrivals,

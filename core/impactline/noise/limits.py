@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
+from ..physics import diameter_from_charge
 from .filters import bessel_power_response, bessel_step_shape, power_law_noise_integral, pulse_peak_fraction
 from .model import TERMS
 from .spectrum import Spectrum
@@ -257,16 +258,11 @@ def detection_limits(coefficients: np.ndarray, *, cutoff_hz: float, order: int =
         material=material or "",
     )
     if material:
-        limits.min_diameter_m = _diameter(min_charge, material)
-        limits.min_diameter_impulse_m = _diameter(min_charge_impulse, material)
+        limits.min_diameter_m = float(diameter_from_charge(min_charge, material))
+        limits.min_diameter_impulse_m = float(diameter_from_charge(min_charge_impulse, material))
     if target_duration_s:
         limits.optimal = optimal_cutoff(coefficients, float(target_duration_s), order, f_lo_hz=f_lo_hz,
                                         f_hi_hz=f_hi_hz, k_sigma=k_sigma)
     return limits
 
 
-def _diameter(charge_c: float, material: str) -> float:
-    """Equivalent spherical diameter (m) of a particle whose full oxidation passes ``charge_c``."""
-    from .. import physics  # written alongside; imported late so the rest of the analysis works without it
-
-    return float(physics.diameter_from_charge(charge_c, physics.get_material(material)))

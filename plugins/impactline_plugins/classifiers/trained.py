@@ -49,8 +49,10 @@ class TrainedForest(Classifier):
         if not self.model:
             raise ImpactlineError("classifier 'forest' needs its model file: [classifier] use = \"forest\", "
                                   "model = \"MODEL.npz\" (written by 'impactline train')")
-        model = ForestModel.load(Path(self.model))
-        return apply_model(model, events)
+        # Loaded once per stage: `impactline classify` applies one stage to run after run.
+        if getattr(self, "_loaded", None) is None:
+            self._loaded = ForestModel.load(Path(self.model))
+        return apply_model(self._loaded, events)
 
 
 def apply_model(model: ForestModel, events: pa.Table) -> dict[str, np.ndarray]:
