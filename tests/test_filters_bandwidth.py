@@ -87,7 +87,8 @@ def test_two_bessel_filters_cascade_near_the_gaussian_rule(mode):
     h = first.frequency_response(np.array([report.info.cutoff_hz]), FS) * second.frequency_response(
         np.array([report.info.cutoff_hz]), FS)
     assert np.abs(h[0]) ** 2 == pytest.approx(0.5, rel=1e-9)
-    # Rise times add nearly in quadrature (exact for Gaussians); within 3 % for these Bessel filters.
+    # Rise times add nearly in quadrature (exact for Gaussians: Colquhoun & Sigworth 1995, Single-Channel
+    # Recording, 2nd ed., same rule as the cutoff); within 3 % for these Bessel filters.
     r1, r2 = first.info(FS).rise_time_s, second.info(FS).rise_time_s
     assert report.info.rise_time_s == pytest.approx(math.hypot(r1, r2), rel=0.03)
     assert report.info.rise_time_s > max(r1, r2)

@@ -34,7 +34,8 @@ def test_hum_attenuated_by_more_than_30_db_at_every_harmonic(mains, mode):
     t, x, amplitudes = _hum(n, mains, harmonics=5)
     stage = Mains(frequency=mains, harmonics=5, mode=mode)
     y = run_filters([stage], x, FS, chunk_samples=16_384)
-    steady = slice(40_000, n - 40_000)  # well past the notches' ring-down (q / (pi f) = 64 ms at 50 Hz)
+    steady = slice(40_000, n - 40_000)  # well past the notches' ring-down (q / (pi f) = 64 ms at 50 Hz: envelope
+    # time constant 1/(pi * bandwidth) of a second-order notch; common practice)
     for k, a in enumerate(amplitudes, start=1):
         before = _amplitude(x[steady], k * mains, t[steady])
         after = _amplitude(y[steady], k * mains, t[steady])

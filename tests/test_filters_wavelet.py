@@ -9,7 +9,7 @@ from impactline import ParameterError
 from impactline.bandwidth import run_filters
 from impactline_plugins.filters import Bessel, Wavelet
 from impactline_plugins.filters.wavelet import (
-    MAD_TO_SIGMA,
+    NORMAL_MAD,
     apply_threshold,
     bayes_threshold,
     mad_sigma,
@@ -32,16 +32,16 @@ def test_universal_threshold_constants():
 
 def test_mad_constant_and_noise_estimate():
     # median(|d|)/0.6744898 (= 1.4826 MAD): Donoho & Johnstone (1994). 0.6744898 is the 75 % point of N(0,1).
-    assert MAD_TO_SIGMA == pytest.approx(stats.norm.ppf(0.75), rel=1e-15)
-    assert 1 / MAD_TO_SIGMA == pytest.approx(1.4826, abs=1e-4)
-    d = np.array([-3.0, 0.2, MAD_TO_SIGMA, -MAD_TO_SIGMA, 9.0])  # median |d| = 0.6744898 -> sigma = 1
+    assert NORMAL_MAD == pytest.approx(stats.norm.ppf(0.75), rel=1e-15)
+    assert 1 / NORMAL_MAD == pytest.approx(1.4826, abs=1e-4)
+    d = np.array([-3.0, 0.2, NORMAL_MAD, -NORMAL_MAD, 9.0])  # median |d| = 0.6744898 -> sigma = 1
     assert mad_sigma(d) == pytest.approx(1.0, rel=1e-15)
     noise = 2.0 * np.random.default_rng(11).standard_normal(200_000)
     assert mad_sigma(noise) == pytest.approx(2.0, rel=0.01)
     # 2 % of large outliers (events) move it only by the shift of the median: P(|Z| < m) = 0.5 / 0.98
     # for the remaining 98 % (computed), +2.3 %, while the standard deviation triples.
     noise[::50] += 40.0
-    expected = 2.0 * stats.norm.ppf(0.5 + 0.25 / 0.98) / MAD_TO_SIGMA
+    expected = 2.0 * stats.norm.ppf(0.5 + 0.25 / 0.98) / NORMAL_MAD
     assert mad_sigma(noise) == pytest.approx(expected, rel=0.01)
     assert np.std(noise) > 2.5 * 2.0
 

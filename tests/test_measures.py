@@ -179,7 +179,8 @@ def test_rectangle_charge_and_local_noise():
 
 
 def test_guard_band_follows_the_filter_rise_time():
-    # Through a slow 4-pole Bessel (rise time 0.3501/fc = 350 us) the falling flank reaches ~40 samples past
+    # Through a slow 4-pole Bessel (rise time 0.3501/fc = 350 us; REFERENCES.md, Bessel 10-90 % rise x fc,
+    # computed from the analog prototype) the falling flank reaches ~40 samples past
     # where a threshold would end the event; two rise times of guard keep it out of the context. The
     # median shrugs the flank off, the rms of the context does not.
     fc, fs = 1e3, 100e3
@@ -222,7 +223,7 @@ def test_no_subpeaks_from_noise_on_a_long_tail():
     fs = 250e3
     k = np.arange(3500.0)
     clean = 1e-9 * np.exp(-np.clip(k - 100, 0, None) / 750.0) * (k >= 100)
-    info = FilterInfo(cutoff_hz=25e3, rise_time_s=0.3501 / 25e3)
+    info = FilterInfo(cutoff_hz=25e3, rise_time_s=0.3501 / 25e3)  # REFERENCES.md: 4-pole Bessel rise x fc
     loose, default = [], []
     for seed in range(10):
         noise = gaussian_filter1d(np.random.default_rng(seed).normal(0, 1, k.size), 3.0)
@@ -317,6 +318,8 @@ def test_bandwidth_unknown_and_width_inversion():
     x[40:50] = 1e-12
     out = BandwidthLimit().measure(window(x, 40, 50, 1e5))
     assert out["short_event"] is None and math.isnan(out["expected_peak_fraction"])
+    # Gaussian filter: 10-90 % rise x fc = 0.3396, sigma = sqrt(ln 2)/(2 pi fc) (REFERENCES.md, Gaussian filter;
+    # Colquhoun & Sigworth 1995); the width inversion is exact algebra on erf.
     assert effective_bandwidth(FilterInfo(cutoff_hz=None, rise_time_s=0.3396e-4)) == pytest.approx((1e4, 0.3396e-4))
     fc = 5e3
     sigma = math.sqrt(math.log(2)) / (2 * math.pi * fc)

@@ -217,6 +217,7 @@ def hdf5_packed_counts_in_group(d: Path):
         run = f.create_group("run1")
         run.attrs["sampling_rate"] = "250 kHz"
         adc = run.create_dataset("adc", data=counts)
+        # CF conventions, section 8.1 "Packed data": value = stored * scale_factor + add_offset.
         adc.attrs.update({"scale_factor": 0.25, "add_offset": -3.0, "units": "pA"})
         run.create_dataset("voltage", data=np.full(N, 0.4))
     expected = (counts.astype(np.float64) * (0.25 * 1e-12)) + (-3.0 * 1e-12)
@@ -258,6 +259,7 @@ def wav_uint8(d: Path):
     codes = np.clip(_counts(dtype=np.int16) // 40 + 100, 0, 255).astype(np.uint8)
     path = d / "eight.wav"
     wavfile.write(path, 250000, codes)
+    # 8-bit PCM is unsigned with zero at 128 (WAVE PCM format, IBM & Microsoft 1991; from memory).
     return WavReader, {"gain": "1 pA"}, path, _scaled(codes, 1e-12, zero=128.0)
 
 

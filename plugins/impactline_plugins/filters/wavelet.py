@@ -47,7 +47,7 @@ from ._edges import StreamBuffer
 
 __all__ = [
     "Wavelet",
-    "MAD_TO_SIGMA",
+    "NORMAL_MAD",
     "mad_sigma",
     "universal_threshold",
     "sure_risk",
@@ -58,7 +58,7 @@ __all__ = [
 ]
 
 #: Median of |N(0, 1)| = Phi^-1(3/4): sigma = median(|d|) / 0.6744897501960817 (Donoho & Johnstone 1994).
-MAD_TO_SIGMA = 0.6744897501960817
+NORMAL_MAD = 0.6744897501960817
 #: Fewest coefficients per level in a block for a usable noise estimate.
 _MIN_COEFFICIENTS = 16
 
@@ -69,7 +69,7 @@ def mad_sigma(d: np.ndarray) -> float:
 
     Donoho & Johnstone (1994), "Ideal spatial adaptation by wavelet shrinkage", Biometrika 81:425-455.
     """
-    return float(np.median(np.abs(d)) / MAD_TO_SIGMA) if len(d) else 0.0
+    return float(np.median(np.abs(d)) / NORMAL_MAD) if len(d) else 0.0
 
 
 def universal_threshold(n: int, sigma: float = 1.0) -> float:
