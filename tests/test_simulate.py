@@ -225,7 +225,8 @@ def test_baseline_hum_drift_and_steps():
 def test_wander_rms():
     spec = SimulationSpec(sample_rate_hz=2e3, bandwidth_hz=500.0, duration_s=20.0, collision_rate_per_s=0.0,
                           **QUIET, wander_rms_A=3e-12, wander_time_s=0.01, seed=3)
-    # 2000 correlation times: the sample sd is within about 3 % of the stationary value (here 15 %).
+    # 2000 correlation times: the sample sd is within about 3 % of the stationary value (here 15 %); the sd
+    # of a sample variance of an AR(1) process over T is about sqrt(2 tau / T) (from memory).
     assert _record(spec).std() == pytest.approx(3e-12, rel=0.15)
 
 
