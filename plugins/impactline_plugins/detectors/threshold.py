@@ -37,6 +37,22 @@ _CLIP_SIGMAS = 3.0
 _MIN_BLOCK = 32
 
 
+def _ranked_pair(ordered: np.ndarray, half: int, rank: int) -> tuple[float, float]:
+    """Values of ranks ``rank - 1`` and ``rank`` (0-based, ascending) of an array partitioned at ``half``.
+
+    The lower value is NaN for rank 0. Only the side of ``half`` holding ``rank`` is partitioned again.
+    """
+    if rank <= half:
+        if rank == half:
+            lower = float(ordered[:half].max()) if half else float("nan")
+            return lower, float(ordered[half])
+        side = np.partition(ordered[:half], rank)
+        return (float(side[:rank].max()) if rank else float("nan")), float(side[rank])
+    k = rank - half - 1
+    side = np.partition(ordered[half + 1:], k)
+    return (float(side[:k].max()) if k else float(ordered[half])), float(side[k])
+
+
 @dataclass
 class _Piece:
     """A kept run piece, or an event being assembled from merged pieces."""
@@ -236,10 +252,22 @@ class ThresholdDetector(Detector):
     # ------------------------------------------------------------------ baseline and noise
     def _block_level(self, st: _State, j: int, a: int, b: int) -> None:
         xb = st.buf.view(a, b)
-        first = median(xb)
-        spread = np.abs(xb - first)
+        n = xb.size
+        half = n // 2
+        ordered = np.partition(xb, half)
+        first = float(ordered[half]) if n % 2 else 0.5 * (float(ordered[:half].max()) + float(ordered[half]))
+        spread = np.abs(ordered - first)
         sigma = MAD_TO_SIGMA * median(spread)
-        level = median(xb[spread <= _CLIP_SIGMAS * sigma]) if sigma > 0 else first
+        level = first
+        if sigma > 0:
+            # The samples within the clip are contiguous in sorted order (|x - first| grows away from
+            # first), so their median is a rank of the whole block, found in the half that ``ordered``
+            # already splits off rather than by copying the kept samples out and partitioning them again.
+            inside = spread <= _CLIP_SIGMAS * sigma
+            kept = int(np.count_nonzero(inside))
+            below = int(np.count_nonzero(ordered[~inside] < first))
+            lower, upper = _ranked_pair(ordered, half, below + kept // 2)
+            level = upper if kept % 2 else 0.5 * (lower + upper)
         st.levels[j] = level
         st.centres[j] = (a - st.origin) + (b - a - 1) / 2.0
 
@@ -311,34 +339,70 @@ class ThresholdDetector(Detector):
             st.region_start = keep_from
 
     def _scan(self, st: _State, track: _Track, frontier: int, final: bool) -> list[_Piece]:
-        """Find the closed, triggered run pieces in ``[track.resume, frontier)`` (vectorised over runs)."""
+        """Find the closed, triggered run pieces in ``[track.resume, frontier)``.
+
+        Trigger samples are rare, so they are found first (one pass) and each one's run is bounded by
+        searching outwards for the release level; the run reaching the frontier is kept open (when the
+        stream goes on) whether or not it has triggered yet.
+        """
         a = track.resume
         off = a - st.region_start
-        e = st.region_d[off:] if track.sign > 0 else -st.region_d[off:]
+        d = st.region_d[off:]
         sig = st.region_s[off:]
-        n = len(e)
+        n = len(d)
+        sign = track.sign
         resumed_open = track.open_start is not None
         resumed_split = track.open_split
         track.open_start, track.open_split = None, False
         track.resume = frontier
         if n == 0:
             return []
-        rel = e > self.release_sigma * sig
-        trg = e > self.k_sigma * sig
-        edges = np.diff(np.concatenate(([False], rel, [False])).view(np.int8))
-        starts = np.flatnonzero(edges == 1)
-        ends = np.flatnonzero(edges == -1)
-        counts = np.concatenate(([0], np.cumsum(trg)))
-        keep = counts[ends] - counts[starts] > 0
-        if not final:
-            keep |= ends == n
-        if not keep.any():
-            return []
+        # sign * d > c * sig, written without negating d: -d > y exactly when d < -y.
+        trigger_level = self.k_sigma * sig
+        triggers = np.flatnonzero(d > trigger_level if sign > 0 else d < -trigger_level)
+        release = self.release_sigma
+
+        def quiet(lo: int, hi: int) -> np.ndarray:
+            """Samples of [lo, hi) at or below the release level, as offsets from lo."""
+            level = release * sig[lo:hi]
+            return np.flatnonzero(~(d[lo:hi] > level) if sign > 0 else ~(d[lo:hi] < -level))
+
+        def run_start(i: int) -> int:
+            width = 64
+            hi = i
+            while hi > 0:
+                lo = max(hi - width, 0)
+                below = quiet(lo, hi)
+                if below.size:
+                    return lo + int(below[-1]) + 1
+                hi, width = lo, 2 * width
+            return 0
+
+        def run_end(i: int) -> int:
+            width = 64
+            lo = i
+            while lo < n:
+                hi = min(lo + width, n)
+                below = quiet(lo, hi)
+                if below.size:
+                    return lo + int(below[0])
+                lo, width = hi, 2 * width
+            return n
+
+        runs = []
+        i = 0
+        while i < triggers.size:
+            t = int(triggers[i])
+            s, e = run_start(t), run_end(t + 1)
+            runs.append((s, e))
+            i = int(np.searchsorted(triggers, e))
+        if not final and not quiet(n - 1, n).size and (not runs or runs[-1][1] != n):
+            runs.append((run_start(n - 1), n))
         pieces = []
-        for s, run_end in zip(starts[keep].tolist(), ends[keep].tolist(), strict=True):
+        for s, end in runs:
             ps = s
-            while ps < run_end:
-                pe = min(ps + st.max_len, run_end)
+            while ps < end:
+                pe = min(ps + st.max_len, end)
                 split_start = ps > s or (ps == 0 and resumed_open and resumed_split)
                 if pe == n and not final:
                     track.open_start, track.open_split = a + ps, split_start
@@ -347,12 +411,14 @@ class ThresholdDetector(Detector):
                 # One excursion per piece, however often noise carries it back and forth across the
                 # trigger level: only a return to the release level separates two excursions (the same
                 # hysteresis that bounds the events).
-                if counts[pe] > counts[ps]:
-                    peak = ps + int(np.argmax(e[ps:pe]))
+                first = int(np.searchsorted(triggers, ps))
+                if first < triggers.size and triggers[first] < pe:
+                    excursion = d[ps:pe] if sign > 0 else -d[ps:pe]
+                    peak = int(np.argmax(excursion))
                     pieces.append(_Piece(
-                        start=a + ps, end=a + pe, n_sub=1, peak_index=a + peak, peak_value=float(e[peak]),
-                        split=split_start or pe < run_end, baseline=float(st.region_b[off + ps]),
-                        noise=float(sig[ps]),
+                        start=a + ps, end=a + pe, n_sub=1, peak_index=a + ps + peak,
+                        peak_value=float(excursion[peak]), split=split_start or pe < end,
+                        baseline=float(st.region_b[off + ps]), noise=float(sig[ps]),
                     ))
                 ps = pe
         return pieces
