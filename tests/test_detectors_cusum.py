@@ -218,3 +218,47 @@ def test_fixed_noise_and_parameter_errors():
         CusumDetector(drift=-1)
     detector = CusumDetector()
     assert detector.lookback_samples(fs) == 25_000 + 2_500 + 1 + 1
+
+
+def _ramped_staircase(seed, fs=1e6, n=600_000, rise_samples=10.0):
+    """Steps of 5-10 sigma whose current rises with a time constant of 10 samples, recorded through a 4-pole
+    Bessel at fs / 10 (so the noise is correlated over several samples), with each step's half-height instant
+    taken from the noise-free recorded signal."""
+    rng = np.random.default_rng(seed)
+    sos = signal.bessel(4, fs / 10, fs=fs, norm="mag", output="sos")
+    noise = signal.sosfilt(sos, rng.normal(size=n + 2000))[2000:]
+    sigma = noise.std()
+    positions = np.arange(5000, n - 5000, 6000)
+    positions = positions + rng.integers(-1000, 1000, len(positions))
+    heights = rng.choice([-1.0, 1.0], len(positions)) * rng.uniform(5.0, 10.0, len(positions)) * sigma
+    t = np.arange(n)
+    clean = np.zeros(n)
+    for p, h in zip(positions, heights, strict=True):
+        clean -= h * np.expm1(-np.maximum(t - p, 0) / rise_samples)
+    clean = signal.sosfilt(sos, clean)
+    half = []
+    for p, h in zip(positions, heights, strict=True):
+        edge = np.sign(h) * (clean[p - 1:p + 300] - clean[p - 1]) - 0.5 * abs(h)
+        k = int(np.flatnonzero(edge >= 0)[0])
+        half.append(p - 1 + k - 1 - edge[k - 1] / (edge[k] - edge[k - 1]))
+    return clean + noise, fs, np.array(half)
+
+
+def test_ramped_steps_in_correlated_noise_are_placed_at_their_half_height_instant():
+    # A step that rises over many samples has no single change sample; its place is the instant it is half-way
+    # between the levels (the 50 % reference level instant of IEEE Std 181-2011, from memory), where the
+    # likelihood of an abrupt step also puts it (Hinkley 1971). With group = 2 / fc the change is refined on a
+    # moving average of half a group. Measured here: 89 % within 3 samples of the half-height instant over the
+    # three records (single-sample likelihood alone: 81 %); the median error is +0.7 samples (the reported
+    # sample is the first one past half height).
+    found, within, errors = 0, 0, []
+    for seed in (0, 2, 4):
+        x, fs, half = _ramped_staircase(seed)
+        events = detect_array(CusumDetector(group="20 us"), x, fs, 65536, check_contract=True)
+        assert len(events) == len(half)
+        error = np.array([e.start_index for e in events]) - half
+        found += len(half)
+        within += int(np.sum(np.abs(error) <= 3))
+        errors.append(error)
+    assert within / found >= 0.86, within / found
+    assert 0.0 < np.median(np.concatenate(errors)) < 1.5

@@ -81,6 +81,41 @@ def test_chunk_size_changes_no_event_and_no_measurement(tmp_path, chunk):
             np.testing.assert_allclose(b, a, rtol=1e-7, atol=1e-22, equal_nan=True, err_msg=name)
 
 
+def test_rows_batched_into_tables_give_the_same_events(tmp_path, monkeypatch):
+    # The runner turns measured rows into Arrow tables every ROW_BATCH events so memory stays flat on long
+    # files; batches of 7 (several per chunk, one partly filled at the end) must change nothing.
+    import impactline.runner as runner_module
+
+    x, _ = _recording()
+    path = _write_npy(tmp_path / "a.npy", x)
+    whole = process_recording(parse_pipeline(PIPELINE), path).events
+    monkeypatch.setattr(runner_module, "ROW_BATCH", 7)
+    batched = process_recording(parse_pipeline(PIPELINE), path).events
+    assert whole.num_rows == 30
+    assert batched.equals(whole)
+    assert batched.column("event_id").to_pylist() == list(range(30))
+
+
+@pytest.mark.parametrize("chunks", [[1 << 20], [4096], [1000, 70_000, 3], [65536]])
+def test_file_noise_meter_is_the_same_whatever_the_chunks(chunks):
+    from impactline.runner import NoiseMeter
+
+    x = np.random.default_rng(3).standard_normal(300_000) * np.repeat([1.0, 2.0, 0.5], 100_000)
+    whole = NoiseMeter()
+    whole.push(x)
+    chunked = NoiseMeter()
+    at, i = 0, 0
+    while at < x.size:
+        step = chunks[i % len(chunks)]
+        chunked.push(x[at:at + step])
+        at, i = at + step, i + 1
+    assert chunked.estimates == whole.estimates and len(whole.estimates) == 4
+    assert chunked.result() == whole.result()
+    # The median of the block estimates: blocks are mostly of sigma 1 and 2 in equal share here, so it lies
+    # between them (1.4826 x MAD estimates the sigma of Gaussian noise; common practice).
+    assert 0.95 < whole.result() < 2.05
+
+
 def test_events_match_what_was_put_in(tmp_path):
     x, starts = _recording()
     events = process_recording(parse_pipeline(PIPELINE), _write_npy(tmp_path / "a.npy", x)).events

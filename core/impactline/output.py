@@ -44,8 +44,9 @@ CONTRACT_COLUMNS: dict[str, Column] = {
     "event_id": Column("int64", "", "event number within the file, from 0 in time order"),
     "start_s": Column("float64", "s", "event start, corrected for the delay of causal filters"),
     "end_s": Column("float64", "s", "event end (exclusive), corrected for filter delay"),
-    "onset_s": Column("float64", "s", "half-height crossing of the leading edge, delay corrected: the onset "
-                                      "estimate for fast-rising events (start_s is where the signal leaves baseline)"),
+    "onset_s": Column("float64", "s", "half-height instant of the leading edge (first peak), delay corrected, "
+                                      "with the filters' smearing of short and decaying pulses undone "
+                                      "(start_s is where the filtered signal leaves its baseline)"),
     "duration_s": Column("float64", "s", "end_s - start_s"),
     "start_index": Column("int64", "", "first sample of the event in the recording (delay corrected)"),
     "end_index": Column("int64", "", "one past the last sample of the event"),

@@ -20,6 +20,7 @@ import shutil
 import sys
 import time
 import traceback
+from collections import deque
 from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
@@ -57,6 +58,9 @@ __all__ = ["EventBranch", "NoiseMeter", "chain_info", "describe_error", "read_ch
            "process_recording", "run", "expand_inputs", "events_schema"]
 
 NOISE_BLOCK_SAMPLES = 1 << 16
+#: Measured events are turned from row dicts into an Arrow table every this many rows: a dict per event
+#: costs about ten times the columnar form, and a long file's events would otherwise grow memory with it.
+ROW_BATCH = 4096
 
 
 @dataclass
@@ -136,14 +140,25 @@ class NoiseMeter:
         self.estimates: list[float] = []
 
     def push(self, samples: np.ndarray) -> None:
-        data = np.concatenate([self.pending, samples]) if self.pending.size else samples
-        whole = (data.size // self.block) * self.block
+        if self.pending.size:
+            # Complete the pending block only, rather than copying the whole chunk behind it.
+            need = self.block - self.pending.size
+            head = np.concatenate([self.pending, samples[:need]])
+            samples = samples[need:]
+            if head.size < self.block:
+                self.pending = head
+                return
+            self._measure_blocks(head)
+        whole = (samples.size // self.block) * self.block
         if whole:
-            # Every 8th sample: the MAD of 8192 samples is within ~1 % of the full block's, at 1/8 the cost.
-            blocks = data[:whole].reshape(-1, self.block)[:, ::8]
-            median = np.median(blocks, axis=1, keepdims=True)
-            self.estimates.extend((1.4826 * np.median(np.abs(blocks - median), axis=1)).tolist())
-        self.pending = data[whole:].copy()
+            self._measure_blocks(samples[:whole])
+        self.pending = samples[whole:].copy()
+
+    def _measure_blocks(self, data: np.ndarray) -> None:
+        # Every 8th sample: the MAD of 8192 samples is within ~1 % of the full block's, at 1/8 the cost.
+        blocks = data.reshape(-1, self.block)[:, ::8]
+        median = np.median(blocks, axis=1, keepdims=True)
+        self.estimates.extend((1.4826 * np.median(np.abs(blocks - median), axis=1)).tolist())
 
     def result(self) -> float:
         estimates = list(self.estimates)
@@ -182,10 +197,14 @@ class EventBranch:
         Bandwidth of the whole filter chain feeding the detector (default: computed from ``filters``).
     noise : NoiseMeter, optional
         File-level noise meter (default: the branch's own, fed with its filtered samples).
+    timing : PulseTiming, optional
+        Onset timing of pulses through the filter chain feeding the detector (default: made from
+        ``filters`` by :func:`pulse_timing`; a comparison, whose branches get samples already filtered,
+        passes the variant's own).
     """
 
     def __init__(self, filters, detector, measures, fs: float, path: Path, schema: pa.Schema, material=None,
-                 chain: FilterInfo | None = None, noise: NoiseMeter | None = None):
+                 chain: FilterInfo | None = None, noise: NoiseMeter | None = None, timing=None):
         self.filters = list(filters)
         self.detector = detector
         self.measures = list(measures)
@@ -206,9 +225,13 @@ class EventBranch:
         self.history = _History()
         # A comparison passes one meter shared by branches fed the very same samples.
         self.noise = noise if noise is not None else NoiseMeter()
-        self.pending: list[Event] = []
+        self.pending: deque[Event] = deque()
         self.rows: list[dict[str, Any]] = []
-        self.state = {"last_start": None, "last_index": -1}
+        self.tables: list[pa.Table] = []
+        self.n_measured = 0
+        if timing is None:
+            timing = pulse_timing(self.filters, fs)
+        self.state = {"last_start": None, "last_index": -1, "pulse_timing": timing}
         self.received = 0
         self.filtered = 0
 
@@ -227,14 +250,23 @@ class EventBranch:
                                   "read; a filter broke the stream contract")
         self._accept(self.detector.finish(self.detector_state))
         self._measure_ready(True)
-        if self.material is not None and self.rows:
+        self._flush_rows()
+        if not self.tables:
+            return table_from_rows([], self.schema)
+        return pa.concat_tables(self.tables).combine_chunks()
+
+    def _flush_rows(self) -> None:
+        """Move the measured rows into a table (sizing them in one vectorised call)."""
+        if not self.rows:
+            return
+        if self.material is not None:
             from .physics import diameter_from_charge
 
-            # One vectorised call for the file rather than one per event.
             charges = np.array([row["charge_C"] for row in self.rows])
             for row, diameter in zip(self.rows, diameter_from_charge(charges, self.material), strict=True):
                 row["diameter_m"] = float(diameter)
-        return table_from_rows(self.rows, self.schema)
+        self.tables.append(table_from_rows(self.rows, self.schema))
+        self.rows = []
 
     def _push_filtered(self, samples: np.ndarray) -> None:
         if samples.size == 0:
@@ -267,10 +299,13 @@ class EventBranch:
 
     def _measure_ready(self, stream_done: bool) -> None:
         while self.pending and (stream_done or self.pending[0].end_index + self.post <= self.history.end):
-            event = self.pending.pop(0)
+            event = self.pending.popleft()
             self.rows.append(_measure_event(event, self.history, self.pre, self.post, self.fs, self.chain,
-                                            self.measures, self.detector.name, str(self.path), len(self.rows),
+                                            self.measures, self.detector.name, str(self.path), self.n_measured,
                                             self.state, self.material))
+            self.n_measured += 1
+            if len(self.rows) >= ROW_BATCH:
+                self._flush_rows()
 
 
 def read_checked(recording, chunk_samples: int, path: Path, progress=None):
@@ -359,7 +394,8 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
     peak_at = int(np.argmax(event.polarity * excursion))
     peak = float(excursion[peak_at])
     delay_samples = (chain.delay_s or 0.0) * fs
-    onset_index = event.start_index + _half_height_crossing(event.polarity * excursion[:peak_at + 1])
+    onset_index = event.start_index + _onset_offset(event.polarity * excursion, event.noise_rms_A, fs,
+                                                    state.get("pulse_timing"))
     start_s = (event.start_index - delay_samples) / fs
     end_s = (event.end_index - delay_samples) / fs
     previous = state["last_start"]
@@ -415,20 +451,45 @@ def predicted_collision_rate(settings: dict[str, Any] | None, median_diameter_m:
             "rate_ratio": measured_rate_per_s / predicted}
 
 
-def _half_height_crossing(rising: np.ndarray) -> float:
-    """Fractional index where a leading edge (event start to peak, polarity applied) first reaches half its peak.
+#: A peak of the leading edge is the running maximum once the signal has fallen this many noise sigmas below it.
+_EDGE_PEAK_DROP_SIGMAS = 4.0
 
-    A band-limited edge is symmetric about its half-height point (exactly so for a zero-phase filter), so this
-    crossing, minus the delay of causal filters, estimates when a fast-rising event began; the detector's
-    start (where the filtered signal leaves the baseline) lies earlier by about one rise time.
+
+def pulse_timing(filters: Sequence, fs: float):
+    """Half-height timing of pulses through ``filters`` at ``fs`` (Hz): a
+    :class:`impactline.bandwidth.PulseTiming`, or None without a low-pass filter."""
+    if not filters:
+        return None
+    from .bandwidth import PulseTiming
+
+    return PulseTiming.from_filters(filters, fs)
+
+
+def _onset_offset(rising: np.ndarray, noise_rms: float, fs: float, timing=None) -> float:
+    """Samples from the event start to its onset: the half-height instant of its leading edge.
+
+    The onset is the instant the event's current first reaches half of its first peak (the 50 % reference
+    level instant of a transition, IEEE Std 181-2011; from memory); ``rising`` is the excursion from the event
+    start on, polarity applied. A band-limited step is symmetric about its half-height point (exactly so for a
+    zero-phase filter), so for an event longer than the chain's rise time the first crossing of half the
+    filtered peak, minus the delay of causal filters, estimates it. The first peak, not the largest, is the
+    reference, so a burst whose later sub-spikes are higher is timed at its first one: the peak is the running
+    maximum at the first point where the signal has fallen ``_EDGE_PEAK_DROP_SIGMAS`` noise sigmas below it.
+    A pulse shorter than about the rise time, or one that decays while the chain rises, peaks lower and its
+    filtered edge crosses half of that peak early; ``timing`` (:class:`impactline.bandwidth.PulseTiming`, from
+    the branch's filters) gives the lead of the crossing over the start from the observed width at half height
+    and tail asymmetry. Without ``timing`` (no low-pass filter) the crossing itself is returned.
     """
-    half = 0.5 * rising[-1]
-    above = np.flatnonzero(rising >= half)
-    first = int(above[0]) if above.size else len(rising) - 1
-    if first == 0:
+    from .bandwidth import pulse_shape_figures
+
+    running_max = np.maximum.accumulate(rising)
+    fallen = np.flatnonzero(running_max - rising >= _EDGE_PEAK_DROP_SIGMAS * noise_rms) if noise_rms > 0 else []
+    peak_at = int(np.argmax(rising[:fallen[0]])) if len(fallen) else int(np.argmax(rising))
+    figures = pulse_shape_figures(rising, peak_at)
+    if figures is None:
         return 0.0
-    low, high = rising[first - 1], rising[first]
-    return first - 1 + float((half - low) / (high - low)) if high > low else float(first)
+    rise, width, asymmetry = figures
+    return rise - timing.lead(width / fs, asymmetry) * fs if timing is not None else rise
 
 
 def _file_row(path: Path, recording, reader_name: str, fs: float, n_samples: int, duration: float,
