@@ -594,7 +594,7 @@ def test_reference_scale_is_a_running_median_that_ignores_crowded_blocks():
     np.testing.assert_allclose(reference_scale(ramp)[8:-8], ramp[8:-8])
     # 1.4826 = 1 / Phi^-1(3/4) makes the MAD a standard deviation for Gaussian noise (Donoho & Johnstone 1994;
     # REFERENCES.md, wavelet denoising).
-    from impactline.noise.events import _MAD_TO_SIGMA
+    from impactline.robust import MAD_TO_SIGMA as _MAD_TO_SIGMA
     from scipy import stats
 
     assert _MAD_TO_SIGMA == pytest.approx(1 / stats.norm.ppf(0.75), rel=1e-12)

@@ -52,6 +52,7 @@ from .output import (
     write_table_atomic,
 )
 from .pipeline import Pipeline, parse_pipeline
+from .robust import MAD_TO_SIGMA
 from .stages import Column, Event, EventWindow, FilterInfo
 
 __all__ = ["EventBranch", "NoiseMeter", "chain_info", "describe_error", "read_checked", "FileResult", "RunResult",
@@ -158,13 +159,13 @@ class NoiseMeter:
         # Every 8th sample: the MAD of 8192 samples is within ~1 % of the full block's, at 1/8 the cost.
         blocks = data.reshape(-1, self.block)[:, ::8]
         median = np.median(blocks, axis=1, keepdims=True)
-        self.estimates.extend((1.4826 * np.median(np.abs(blocks - median), axis=1)).tolist())
+        self.estimates.extend((MAD_TO_SIGMA * np.median(np.abs(blocks - median), axis=1)).tolist())
 
     def result(self) -> float:
         estimates = list(self.estimates)
         if self.pending.size >= 1024 or not estimates and self.pending.size > 1:
             tail = self.pending
-            estimates.append(float(1.4826 * np.median(np.abs(tail - np.median(tail)))))
+            estimates.append(float(MAD_TO_SIGMA * np.median(np.abs(tail - np.median(tail)))))
         return float(np.median(estimates)) if estimates else float("nan")
 
 

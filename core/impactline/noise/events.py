@@ -48,6 +48,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..robust import MAD_TO_SIGMA
 from .spectrum import overlaps_intervals
 
 __all__ = [
@@ -82,7 +83,6 @@ SCALES = (1, 8, 64, 512)
 #: Samples of a block used for its median and spread (evenly spaced on the absolute grid): 16384 samples
 #: give the spread to about 1 %, at a quarter of the cost for the default block at 250 kHz.
 _SCALE_POINTS = 16384
-_MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4): MAD of a Gaussian = 0.6745 sigma
 
 
 @dataclass
@@ -168,7 +168,7 @@ def _robust_centre_scale(values: np.ndarray) -> tuple[float, float]:
     coarsely quantised data, and is 0 only for a constant block)."""
     centre = float(np.median(values))
     dev = np.abs(values - centre)
-    scale = _MAD_TO_SIGMA * float(np.median(dev))
+    scale = MAD_TO_SIGMA * float(np.median(dev))
     if scale == 0.0:
         scale = float(np.sqrt(np.mean(dev ** 2)))
     return centre, scale

@@ -1,5 +1,6 @@
-"""Pieces shared by the bundled detectors: a sample buffer in absolute indices, robust noise estimates,
-and a helper that streams an array through a detector in chunks.
+"""Pieces shared by the bundled detectors: a sample buffer in absolute indices, chunk checks, and a helper
+that streams an array through a detector in chunks (robust noise estimates come from :mod:`impactline.robust`
+and are re-exported here).
 
 Chunk invariance rests on one rule: every estimate a detector makes depends only on absolute sample
 positions (fixed blocks counted from the first sample of the stream), never on where a chunk happened to
@@ -12,61 +13,10 @@ from collections.abc import Iterable
 
 import numpy as np
 from impactline import Detector, Event
+from impactline.robust import MAD_TO_SIGMA, median, robust_sigma
 
 __all__ = ["MAD_TO_SIGMA", "SampleBuffer", "check_chunk", "detect_array", "median", "robust_sigma",
            "signature"]
-
-#: Scale factor turning the median absolute deviation of Gaussian data into its standard deviation,
-#: 1 / Phi^-1(3/4) = 1.482602... (Hampel 1974, JASA 69:383, from memory; the same constant as Donoho &
-#: Johnstone 1994's median(|d|)/0.6745). Checked against scipy.stats.norm.ppf in the tests.
-MAD_TO_SIGMA = 1.482602218505602
-
-
-def median(values: np.ndarray) -> float:
-    """Median of a 1-D array (same value as ``numpy.median``, several times faster on long blocks).
-
-    ``numpy.median`` partitions around both middle elements at once, which costs several single
-    partitions; one partition plus the maximum of the lower half gives the same two middle values.
-    """
-    n = values.size
-    if n == 0:
-        return float("nan")
-    half = n // 2
-    part = np.partition(values, half)
-    upper = float(part[half])
-    if n % 2:
-        return upper
-    return 0.5 * (float(part[:half].max()) + upper)
-
-
-def robust_sigma(values: np.ndarray, centre: float | None = None) -> float:
-    """Standard deviation of the Gaussian bulk of ``values`` from the median absolute deviation.
-
-    Falls back to the root-mean-square deviation from the median when more than half of the values are
-    identical (coarsely quantised data), so a quiet stretch of an ADC record does not give zero noise.
-
-    Parameters
-    ----------
-    values : ndarray
-        1-D sample, any unit.
-    centre : float, optional
-        Point the deviations are taken from; default the median of ``values``. Pass 0 for residuals
-        about a known baseline (the spread about that baseline is then what is estimated).
-
-    Returns
-    -------
-    float
-        Estimated standard deviation, same unit as ``values`` (0.0 only for a constant or empty sample).
-    """
-    if values.size == 0:
-        return 0.0
-    if centre is None:
-        centre = median(values)
-    deviation = np.abs(values - centre)
-    sigma = MAD_TO_SIGMA * median(deviation)
-    if sigma > 0.0:
-        return sigma
-    return float(np.sqrt(np.mean(deviation * deviation)))
 
 
 def check_chunk(detector: str, x: np.ndarray, first_index: int, expected_index: int | None) -> np.ndarray:

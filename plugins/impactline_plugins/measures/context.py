@@ -7,6 +7,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 from impactline import Column, EventWindow, FeatureExtractor, Param
+from impactline.robust import MAD_TO_SIGMA
 
 from .pulse import effective_bandwidth, symmetric_context
 
@@ -15,8 +16,6 @@ __all__ = ["BaselineContext"]
 #: Rise times of the filter chain the guard band spans at least: beyond two rise times a filtered step has
 #: settled to within about 1 % (REFERENCES.md: a rectangular pulse longer than 2 rise times keeps 99 %).
 GUARD_RISE_TIMES = 2.0
-#: MAD to standard deviation for Gaussian noise, 1/Phi^-1(3/4) (Donoho & Johnstone 1994; REFERENCES.md).
-MAD_TO_SIGMA = 1.482602218505602
 
 
 class BaselineContext(FeatureExtractor):
