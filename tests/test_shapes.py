@@ -25,6 +25,7 @@ from impactline.shapes import (
     pca_fit,
     read_events_with,
     read_label_file,
+    screen_features,
     shape_matrix,
     wavelet_features,
 )
@@ -285,6 +286,60 @@ def test_feature_matrix_logs_quantities_and_fills_gaps():
     np.testing.assert_allclose(matrix[:, 1], [1, 2, 3, 4])
     with pytest.raises(ImpactlineError, match="not in the events"):
         feature_matrix(table, ["fwhm_s"])
+
+
+def _atom_events(n_per_class=200, seed=1):
+    """Three kinds of event, each one Gaussian blob in (log duration, log peak), plus two misleading columns.
+
+    As measured on simulated steps (docs/shapes.md): ``subpeak_count`` is an integer, 1-2 on most events
+    but 60-180 on half of the second kind (noise peaks counted along a long plateau); ``decay_time_s`` is
+    undefined (NaN) on half of the third kind and about 1 s on its other half, so a median fill puts the
+    first half onto the other kinds' typical value.
+    """
+    rng = np.random.default_rng(seed)
+    kind = np.repeat(np.arange(3), n_per_class)
+    half = rng.random(kind.size) < 0.5
+    duration = 10.0 ** (np.array([-4.0, -3.0, -2.0])[kind] + 0.1 * rng.standard_normal(kind.size))
+    peak = 10.0 ** (np.array([-10.0, -9.0, -10.0])[kind] + 0.1 * rng.standard_normal(kind.size))
+    decay = 10.0 ** (np.array([-3.5, -3.5, 0.0])[kind] + 0.1 * rng.standard_normal(kind.size))
+    decay[(kind == 2) & half] = np.nan
+    count = rng.integers(1, 3, kind.size)
+    count[(kind == 1) & half] = rng.integers(60, 181, np.sum((kind == 1) & half))
+    table = pa.table({"file": ["f"] * kind.size, "event_id": np.arange(kind.size), "duration_s": duration,
+                      "peak_A": peak, "decay_time_s": decay, "subpeak_count": count.astype(np.int64)})
+    return table, kind
+
+
+def test_screen_features_leaves_out_counts_and_mostly_missing_columns():
+    table, kind = _atom_events()
+    kept, dropped = screen_features(table, ["duration_s", "peak_A", "decay_time_s", "subpeak_count"])
+    assert kept == ["duration_s", "peak_A"]
+    assert dropped == {"decay_time_s": f"missing on {100 * np.mean(np.isnan(table['decay_time_s'])):.0f} % of events",
+                       "subpeak_count": "integer-valued"}
+    # Judged on the rows given: without the third kind nothing is missing.
+    kept, dropped = screen_features(table, ["decay_time_s"], rows=kind < 2)
+    assert kept == ["decay_time_s"] and dropped == {}
+    kept, _ = screen_features(table, ["decay_time_s"], max_missing=0.5)
+    assert kept == ["decay_time_s"]
+    with pytest.raises(ImpactlineError, match="left out subpeak_count: integer-valued; name them with --features"):
+        embed(table.select(["file", "event_id", "subpeak_count"]), "features")
+
+
+def test_screened_default_features_give_the_true_count_and_the_atoms_do_not():
+    # Known answer: three kinds. With the count and the median-filled column forced in, the second and third
+    # kinds each fall into two well-separated groups and the mixture counts five.
+    table, kind = _atom_events()
+    stage = GaussianMixtureShapes(embedding="features", max_k=8)
+    out = stage.fit_predict(table)
+    assert stage.embedding_["features"] == ["duration_s", "peak_A"]
+    assert set(stage.embedding_["features_dropped"]) == {"decay_time_s", "subpeak_count"}
+    assert out["cluster_count"][0] == 3
+    assert adjusted_rand_score(kind, out["cluster"]) > 0.98
+    bic = [r for r in stage.selection_.to_pylist() if r["criterion"] == "bic"]
+    assert [r["k"] for r in bic if r["chosen"]] == [3]
+    forced = GaussianMixtureShapes(embedding="features", max_k=8,
+                                   features=["duration_s", "peak_A", "decay_time_s", "subpeak_count"])
+    assert forced.fit_predict(table)["cluster_count"][0] == 5
 
 
 # ------------------------------------------------------------------------------------------------ clustering
@@ -649,6 +704,18 @@ def test_cluster_command_combines_components_and_records_the_entropy(tmp_path, c
         _cli(["cluster", str(tmp_path / "run"), "--method", "gmm", "--combine", "none", "--clusters", "3"])
     with pytest.raises(ImpactlineError, match="does not apply"):
         _cli(["cluster", str(tmp_path / "run"), "--method", "kmeans", "--combine", "entropy"])
+
+
+def test_cluster_command_reports_the_features_left_out(tmp_path, capsys):
+    table, kind = _atom_events(n_per_class=60)
+    (tmp_path / "run" / "events.parquet").mkdir(parents=True)
+    pq.write_table(table, tmp_path / "run" / "events.parquet" / "f.parquet")
+    assert _cli(["cluster", str(tmp_path / "run"), "--method", "gmm", "--embedding", "features", "--max-k", "5"]) == 0
+    report = capsys.readouterr().out
+    assert "features duration_s, peak_A (left out: decay_time_s missing on" in report
+    assert "subpeak_count integer-valued" in report
+    clusters = pq.read_table(tmp_path / "run" / "clusters.parquet")
+    assert adjusted_rand_score(kind, clusters.column("cluster").to_pylist()) > 0.95
 
 
 def test_commands_explain_bad_input(tmp_path):

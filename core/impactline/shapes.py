@@ -13,7 +13,8 @@ Embedding (:func:`embed`)
     ``pca``: exact principal components of the shapes, accumulated over row batches (the covariance
     of 64 points is 64 x 64 however many events there are); ``wavelet``: the highest-variance
     coefficients of a 4-level Haar transform; ``features``: scalar columns, log10 of magnitudes for
-    quantities in s, A, C or m, each standardized; ``pca+features``: both blocks side by side.
+    quantities in s, A, C or m, each standardized (by default only the continuous columns measured on
+    nearly every event, :func:`screen_features`); ``pca+features``: both blocks side by side.
 Sidecar tables (one row per event unless noted), joined on ``(file, event_id)``
     ``clusters.parquet`` (cluster labels), ``cluster_prototypes.parquet`` (one row per cluster: median
     shape and spread), ``cluster_sizes.parquet`` (one row per file and cluster),
@@ -45,7 +46,7 @@ from .stages import Column
 __all__ = [
     "SHAPE_COLUMN", "DEFAULT_FEATURES", "EMBEDDINGS", "CLUSTERS_TABLE", "PROTOTYPES_TABLE", "SIZES_TABLE",
     "SELECTION_TABLE", "CLASSES_TABLE", "SIDECAR_TABLES", "load_run_events", "shape_matrix", "feature_matrix",
-    "PCAFit", "pca_fit", "wavelet_features",
+    "PCAFit", "pca_fit", "wavelet_features", "screen_features", "MAX_MISSING_SHARE",
     "asinh_transform", "SHAPE_TRANSFORMS", "Embedding", "embed", "prototypes", "cluster_sizes",
     "selection_table", "write_sidecar", "join_sidecar", "read_events_with", "read_label_file", "match_labels",
     "ForestModel", "model_inputs",
@@ -60,6 +61,8 @@ SHAPE_TRANSFORMS: tuple[str, ...] = ("asinh", "none")
 #: Fraction of the shape variance the automatic number of components keeps, and its bounds.
 AUTO_VARIANCE = 0.95
 AUTO_COMPONENTS = (2, 16)
+#: Largest share of events a default scalar feature may lack and still enter a clustering embedding.
+MAX_MISSING_SHARE = 0.05
 WAVELET, WAVELET_LEVELS = "haar", 4
 
 CLUSTERS_TABLE = "clusters.parquet"
@@ -211,6 +214,60 @@ def feature_matrix(events: pa.Table, names: Sequence[str] = (), medians: Mapping
     return matrix, used, fills
 
 
+def screen_features(events: pa.Table, names: Sequence[str], rows: np.ndarray | None = None,
+                    max_missing: float = MAX_MISSING_SHARE) -> tuple[list[str], dict[str, str]]:
+    """The scalar features fit for a mixture embedding: continuous and measured on nearly every event.
+
+    Two kinds of column are left out, because both put events on single values (atoms) that a Gaussian
+    mixture fits with narrow extra components, so one kind of event is counted as several clusters:
+
+    * integer-valued columns (counts such as ``subpeak_count``): a mixture of continuous densities assumes
+      continuous coordinates;
+    * columns missing (non-finite) on more than ``max_missing`` of the events: :func:`feature_matrix` fills
+      a gap with the column's median, and when a quantity is undefined for a whole kind of event (no decay
+      time on a step that stays up) that kind is piled onto one value that belongs to the other kinds.
+
+    Measured on the simulator's five shapes (docs/shapes.md): steps were split into 3-5 components by
+    ``subpeak_count`` (noise peaks counted along the plateau, 0 to about 180) and by the median-filled
+    ``decay_time_s`` / ``fwhm_s`` (undefined on 55-61 % of the steps).
+
+    Parameters
+    ----------
+    events : pyarrow.Table
+    names : sequence of str
+        Candidate columns (present in ``events``).
+    rows : ndarray of bool, optional
+        Events to judge on (the usable ones); all when None.
+    max_missing : float
+        Largest share of events a column may lack, 0-1.
+
+    Returns
+    -------
+    kept : list of str
+    dropped : dict
+        Column -> reason (``"integer-valued"`` or ``"missing on N % of events"``).
+    """
+    kept, dropped = [], {}
+    for name in names:
+        raw = events.column(name).to_numpy(zero_copy_only=False)
+        values = np.asarray(raw, dtype=np.float64) if raw.dtype != object else np.array(
+            [np.nan if v is None else float(v) for v in raw])
+        if rows is not None:
+            values = values[rows]
+        finite = np.isfinite(values)
+        if name.endswith(_LOG_SUFFIXES):
+            finite &= values != 0.0  # log10 of a zero magnitude is missing too
+        missing = 1.0 - float(finite.mean()) if values.size else 1.0
+        if missing > max_missing:
+            dropped[name] = f"missing on {100 * missing:.0f} % of events"
+        elif finite.any() and np.all(values[finite] == np.round(values[finite])) \
+                and not name.endswith(_LOG_SUFFIXES):
+            dropped[name] = "integer-valued"
+        else:
+            kept.append(name)
+    return kept, dropped
+
+
 # ------------------------------------------------------------------------------------------------ embedding
 @dataclass
 class PCAFit:
@@ -339,7 +396,8 @@ def embed(events: pa.Table, method: str = "pca+features", components: int = 0, f
         Components (PCA) or coefficients (wavelet) kept; 0 keeps the fewest that hold 95 % of the
         variance, between 2 and 16.
     features : sequence of str
-        Scalar columns (``features`` methods); empty for the defaults present.
+        Scalar columns (``features`` methods); empty for the defaults present that pass
+        :func:`screen_features` (those left out are listed in ``info["features_dropped"]``).
     transform : {"asinh", "none"}
         Shapes enter as they are or through :func:`asinh_transform` (before PCA or wavelets).
     floor : float
@@ -385,11 +443,19 @@ def embed(events: pa.Table, method: str = "pca+features", components: int = 0, f
             scale = float(np.sqrt(fit.variances[0]))
         blocks.append(block / scale if scale > 0 else block)
     if method in ("features", "pca+features"):
-        matrix, used, _ = feature_matrix(events, features)
+        names = list(features)
+        if not names:
+            names, dropped = screen_features(events, [c for c in DEFAULT_FEATURES if c in events.column_names],
+                                             valid)
+            info["features_dropped"] = dropped
+        matrix, used, _ = feature_matrix(events, names) if names else (np.empty((n, 0)), [], {})
         matrix = matrix[valid]
         if not used:
+            left_out = "; ".join(f"{k}: {v}" for k, v in info.get("features_dropped", {}).items())
             raise ImpactlineError("no usable scalar feature in the events (looked for "
-                                  f"{', '.join(features or DEFAULT_FEATURES)})")
+                                  f"{', '.join(features or DEFAULT_FEATURES)}"
+                                  + (f"; left out {left_out}; name them with --features to use them anyway"
+                                     if left_out else "") + ")")
         std = matrix.std(axis=0)
         keep = std > 0
         blocks.append((matrix[:, keep] - matrix[:, keep].mean(axis=0)) / std[keep])

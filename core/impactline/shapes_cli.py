@@ -262,6 +262,8 @@ def summarize_clusters(result: dict[str, Any], seconds: float) -> str:
             detail += f", {info['components']} components ({100 * info.get('variance_kept', 0):.1f} % of variance)"
         if info.get("features"):
             detail += f", features {', '.join(info['features'])}"
+        if info.get("features_dropped"):
+            detail += " (left out: " + ", ".join(f"{k} {v}" for k, v in info["features_dropped"].items()) + ")"
         lines.append(detail)
     selection = result.get("selection")
     if selection is not None and selection.num_rows:

@@ -9,18 +9,18 @@ Run by hand (figures go in the issue note)::
 or through pytest: ``python3 -m pytest -m benchmark tests/benchmarks/bench_shapes.py -s``.
 
 Quality
-    The simulator (:mod:`impactline.simulate`) writes recordings with the five shapes in equal shares at
-    3 collisions per second (so a persistent step rarely shares its detected event with another
-    collision). The pipeline is a threshold detector plus ``pulse-shape`` and ``waveform`` (onset
-    aligned, peak normalized, log spacing up to 5 ms). Detected events are matched to true events by
-    interval overlap (each true event to the first detected event overlapping it); the matched events
-    are clustered and compared with the true shapes by the adjusted Rand index
-    (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). The Gaussian mixture runs with
-    and without combining its components by entropy (Baudry et al. 2010); for the combined runs the
-    report also gives the ARI of every step of the merge hierarchy (``hierarchy``: clusters, ARI), which
-    shows what the best choice of the count would have given. For the trained classifier the
-    matched events are split in halves (stratified, seeded): ``impactline train`` on one half, the
-    saved model applied to the other.
+    The simulator (:mod:`impactline.simulate`) writes recordings with the five shapes in equal shares at 3
+    collisions per second (so a persistent step rarely shares its detected event with another collision).
+    The pipeline is a threshold detector plus ``pulse-shape`` and ``waveform`` (peak aligned, peak
+    normalized, log spacing up to 5 ms; with onset alignment, the detector's threshold crossing, blips of a
+    few microseconds came one log-spaced point early or late and split into two clusters). Detected events
+    are matched to true events by interval overlap (each true event to the first detected event overlapping
+    it); the matched events are clustered and compared with the true shapes by the adjusted Rand index
+    (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). The Gaussian mixture runs with and
+    without combining its components by entropy (Baudry et al. 2010); for the combined runs the report also
+    gives the ARI of every step of the merge hierarchy (``hierarchy``: clusters, ARI), which shows what the
+    best choice of the count would have given. For the trained classifier the matched events are split in
+    halves (stratified, seeded): ``impactline train`` on one half, the saved model applied to the other.
 Scaling
     Synthetic run folders (1,000 parts in ``events.parquet/``) of shapes drawn around five templates
     plus noise; each size is clustered in a fresh process, timing ``cluster_runs`` (reading, embedding,
@@ -64,7 +64,7 @@ use = "pulse-shape"
 use = "waveform"
 pre = "50 us"
 post = "5 ms"
-align = "onset"
+align = "peak"
 normalize = ["peak"]
 spacing = "log"
 """
