@@ -10,6 +10,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from impactline import Event, EventWindow, FilterInfo, ParameterError
+from impactline.bandwidth import leading_edge
 from impactline.errors import ImpactlineError
 from impactline.output import CONTRACT_COLUMNS, schema_for
 from impactline.pipeline import parse_pipeline
@@ -45,6 +46,7 @@ from impactline_plugins.classifiers.cluster import (
 )
 from impactline_plugins.measures.waveform import WAVEFORM_STAGES, Waveform, bin_average, log_edges, make_waveform_stage
 from scipy.integrate import quad
+from scipy.special import erf
 from sklearn.metrics import adjusted_rand_score
 
 FS = 100e3
@@ -113,7 +115,7 @@ def test_bundled_lengths_and_factory_give_fixed_length_columns():
 
 
 @pytest.mark.parametrize("cls", WAVEFORM_STAGES)
-@pytest.mark.parametrize("settings", [{}, {"align": "peak", "normalize": ["charge"]},
+@pytest.mark.parametrize("settings", [{}, {"align": "peak", "normalize": ["charge"]}, {"align": "edge"},
                                       {"normalize": ["none", "duration"]}, {"spacing": "log", "baseline": "detector"}])
 def test_waveform_survives_awkward_events(cls, settings):
     check_measure_robust(cls(**settings))
@@ -122,7 +124,7 @@ def test_waveform_survives_awkward_events(cls, settings):
 def test_onset_alignment_with_one_sample_bins_gives_neighbour_means():
     # pre + post = 64 samples over 64 points: bin k covers [start - 10 + k, start - 9 + k].
     x = np.random.default_rng(5).standard_normal(200)
-    stage = Waveform(pre=10 / FS, post=54 / FS, normalize=["none"], baseline="detector")
+    stage = Waveform(pre=10 / FS, post=54 / FS, align="onset", normalize=["none"], baseline="detector")
     values = stage.measure(_window(x, 80, 90))
     expected = (x[70:134] + x[71:135]) / 2
     np.testing.assert_allclose(values["shape"], expected.astype(np.float32), rtol=1e-6)
@@ -143,6 +145,62 @@ def test_peak_alignment_is_sub_sample():
     onset = Waveform(pre=20 / FS, post=44 / FS, align="onset", baseline="detector")
     onset_shapes = [np.asarray(onset.measure(_window(_gaussian(c), 140, 160))["shape"]) for c in (150.0, 150.7)]
     assert worst_peak < 0.02 < np.max(np.abs(onset_shapes[1] - onset_shapes[0]))
+
+
+def _blip(t0, n=700, width=4.0, sigma=1.0):
+    """A rectangle of ``width`` samples from ``t0`` through a Gaussian filter of ``sigma`` samples (peak < 1)."""
+    t = np.arange(n) - t0
+    return 0.5 * (erf(t / (np.sqrt(2) * sigma)) - erf((t - width) / (np.sqrt(2) * sigma)))
+
+
+def test_leading_edge_is_the_half_height_instant_of_the_first_peak_wherever_the_threshold_fell():
+    # Two Gaussian sub-spikes (sigma 3 samples), the second higher: the half-height crossing of the first is
+    # at its centre - 3 sqrt(2 ln 2) (up to the linear interpolation between samples).
+    y = 0.6 * _gaussian(150.3, 400, 3.0) + _gaussian(180.3, 400, 3.0)
+    expected = 150.3 - 3.0 * np.sqrt(2 * np.log(2))
+    for start in (140, 144, 147, 149):  # below and above half of the first peak (0.3 reached near 146.8)
+        edge = leading_edge(y, 0.01, start)
+        assert edge.peak_index == 150
+        assert edge.crossing == pytest.approx(expected, abs=0.05)
+    # From the first sample on, as the runner calls it for onset_s: the same instant, counted from 0.
+    assert leading_edge(y[144:], 0.01).crossing == pytest.approx(expected - 144, abs=0.05)
+    assert leading_edge(y[149:], 0.01).crossing == 0.0  # nothing before the start to interpolate with
+    assert leading_edge(-y, 0.01, 140) is None and leading_edge(y, 0.01, 400) is None
+    # A level above half long before the start is not an edge (a missed offset): the edge is taken at the start.
+    offset = np.r_[np.full(100, 7.0), np.full(20, 12.0), np.full(100, 7.0)]
+    assert leading_edge(offset, 0.1, 100).crossing == 100.0
+    rise = np.r_[np.zeros(97), np.full(3, 7.0), offset[100:]]  # above half (6) from sample 97: 3 samples back
+    assert leading_edge(rise, 0.1, 100).crossing == pytest.approx(96 + 6 / 7)
+
+
+def test_edge_alignment_ignores_a_one_sample_shift_of_the_threshold_crossing():
+    # A 4-sample blip: a threshold crossing one sample later moves the onset-aligned log-spaced shape by a
+    # point but not the edge-aligned one.
+    x = 2e-10 * _blip(200.4)
+    shapes = {}
+    for align in ("edge", "onset"):
+        stage = Waveform(pre=10 / FS, post=500 / FS, align=align, spacing="log", baseline="detector")
+        shapes[align] = [np.asarray(stage.measure(_window(x, start, 206, noise=1e-12))["shape"])
+                         for start in (200, 201)]
+    edge_change = np.max(np.abs(shapes["edge"][1] - shapes["edge"][0]))
+    onset_change = np.max(np.abs(shapes["onset"][1] - shapes["onset"][0]))
+    assert edge_change < 1e-6 and onset_change > 0.1
+
+
+def test_edge_alignment_anchors_a_burst_at_its_first_sub_spike():
+    # Same first sub-spike, second one higher or lower: edge alignment keeps the first in place, peak
+    # alignment jumps to the second when it is the highest.
+    bursts = [0.6 * _gaussian(150.3, 400, 3.0) + h * _gaussian(180.3, 400, 3.0) for h in (1.0, 0.3)]
+    shapes = {}
+    for align in ("edge", "peak"):
+        stage = Waveform(pre=16 / FS, post=48 / FS, align=align, normalize=["none"], baseline="detector")
+        shapes[align] = [np.asarray(stage.measure(_window(b * 1e-10, 140, 200, noise=1e-13))["shape"]) * 1e10
+                         for b in bursts]
+    # One-sample bins from 16 before the anchor (~146.7); bins 0-35 reach 20 samples after it: the first
+    # sub-spike only (the second, 33.6 samples after the anchor, is 4.5 sigma away).
+    np.testing.assert_allclose(shapes["edge"][0][:36], shapes["edge"][1][:36], atol=1e-3)
+    assert np.argmax(shapes["edge"][0][:36]) in (19, 20)  # the first peak, 3.5 samples after its edge
+    assert np.max(np.abs(shapes["peak"][0][:36] - shapes["peak"][1][:36])) > 0.3
 
 
 def test_normalizations():
@@ -200,7 +258,7 @@ def test_pre_baseline_follows_an_offset_the_detector_missed():
 
 def test_log_spacing_shows_a_step_as_flat_and_a_blip_as_brief():
     fs_step = np.r_[np.zeros(100), np.ones(2000)]
-    stage = Waveform(pre=10 / FS, post=1500 / FS, spacing="log")
+    stage = Waveform(pre=10 / FS, post=1500 / FS, align="onset", spacing="log")
     step = np.asarray(stage.measure(_window(fs_step, 100, 1000))["shape"])
     assert np.isnan(stage.measure(_window(fs_step, 100, 1000))["shape_dt_s"])
     np.testing.assert_allclose(step[:7], 0.0, atol=1e-12)

@@ -21,6 +21,7 @@ rise_time_10_90         10-90 % rise time of a sampled step response
 step_response           a unit step through a chain of stages
 run_filters             push a signal through a chain of stages, optionally in chunks
 pulse_shape_figures     half-height crossing, width and tail asymmetry of a band-limited pulse
+leading_edge            first peak of an event and the sub-sample instant its edge crosses half of it
 PulseTiming             half-height lead of a pulse's band-limited edge over its start, from a chain's step response
 """
 
@@ -29,6 +30,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 from scipy.optimize import brentq
@@ -42,6 +44,8 @@ __all__ = [
     "cascade_info",
     "explain_cascade",
     "gaussian_cascade_cutoff",
+    "LeadingEdge",
+    "leading_edge",
     "minus_3db_frequency",
     "pulse_shape_figures",
     "rise_time_10_90",
@@ -363,6 +367,83 @@ def pulse_shape_figures(y: np.ndarray, peak_at: int) -> tuple[float, float, floa
     rise_quarter = _crossing_up(y, quarter, int(low_before[-1]) + 1)
     fall_quarter = _crossing_down(y, quarter, k)
     return rise, fall - rise, ((fall_quarter - fall) - (rise - rise_quarter)) / (fall - rise)
+
+
+#: A peak of the leading edge is the running maximum once the signal has fallen this many noise sigmas below it.
+EDGE_PEAK_DROP_SIGMAS = 4.0
+#: Samples before the start searched for the half-height crossing by :func:`leading_edge`.
+EDGE_LOOKBACK_SAMPLES = 4
+
+
+class LeadingEdge(NamedTuple):
+    """The first peak of an event and its leading edge (:func:`leading_edge`); positions in samples of ``y``."""
+
+    peak_index: int
+    """Index of the first peak."""
+    crossing: float
+    """Fractional index where the edge reaches half of the first peak."""
+    width: float
+    """Width at half height of the first peak, samples (inf when ``y`` stays above half after it)."""
+    asymmetry: float
+    """Tail asymmetry of the first peak (see :func:`pulse_shape_figures`); nan when undefined."""
+
+
+def leading_edge(y: np.ndarray, noise_rms: float, start: int = 0, drop_sigmas: float = EDGE_PEAK_DROP_SIGMAS,
+                 lookback: int = EDGE_LOOKBACK_SAMPLES) -> LeadingEdge | None:
+    """First peak of an event and the sub-sample instant its leading edge crosses half of that peak.
+
+    The first peak, not the largest, is the reference, so a burst whose later sub-spikes are higher is
+    placed at its first one: it is the running maximum of ``y[start:]`` at the first point where the signal
+    has fallen ``drop_sigmas`` noise sigmas below it (the largest value of ``y[start:]`` when it never does).
+    The crossing is the first sample from ``start`` on that reaches half of the peak, interpolated linearly
+    with the sample before it (the 50 % reference level instant of a transition, IEEE Std 181-2011; from
+    memory). When ``y[start]`` is already above half (a detector threshold above half of a small peak) the
+    crossing is searched backward, through the samples before ``start`` that are still above half, to the
+    last upward crossing, at most ``lookback`` samples back; with ``start = 0`` the crossing is then 0. The
+    result therefore does not depend on which sample of the edge a threshold crossed first, only on the
+    waveform. When the signal is still above half ``lookback`` samples before the start, what lies before
+    is not the baseline (an offset the baseline missed, the tail of an earlier event) and the edge is taken
+    from ``start`` on, as with ``start = 0``.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n,)
+        The event's excursion from its baseline with polarity applied (rising edge positive), A (any unit),
+        optionally with context before the event.
+    noise_rms : float
+        Noise standard deviation, same unit as ``y``; 0 or less takes the largest value as the peak.
+    start : int, optional
+        Index of the event start in ``y`` (the detector's threshold crossing), default 0.
+    drop_sigmas : float, optional
+        Fall below the running maximum, in noise sigmas, that ends the first peak (default
+        :data:`EDGE_PEAK_DROP_SIGMAS`).
+    lookback : int, optional
+        Most samples before ``start`` searched for the crossing (default :data:`EDGE_LOOKBACK_SAMPLES`).
+
+    Returns
+    -------
+    LeadingEdge or None
+        Peak index, half-height crossing (fractional index), width at half height (samples) and tail
+        asymmetry, all in samples of ``y``; None when ``y[start:]`` is empty or the first peak is not positive.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    rising = y[start:]
+    if not rising.size:
+        return None
+    running_max = np.maximum.accumulate(rising)
+    fallen = np.flatnonzero(running_max - rising >= drop_sigmas * noise_rms) if noise_rms > 0 else []
+    peak_at = int(np.argmax(rising[:fallen[0]])) if len(fallen) else int(np.argmax(rising))
+    half = 0.5 * float(rising[peak_at])
+    # Walk back over context samples still above half, keeping one below it for the interpolation.
+    lo, floor = start, max(0, start - lookback)
+    while lo > floor and y[lo - 1] >= half:
+        lo -= 1
+    lo = start if lo > 0 and y[lo - 1] >= half else max(lo - 1, 0)
+    figures = pulse_shape_figures(y[lo:], start + peak_at - lo)
+    if figures is None:
+        return None
+    crossing, width, asymmetry = figures
+    return LeadingEdge(start + peak_at, lo + crossing, width, asymmetry)
 
 
 @dataclass(frozen=True)

@@ -452,10 +452,6 @@ def predicted_collision_rate(settings: dict[str, Any] | None, median_diameter_m:
             "rate_ratio": measured_rate_per_s / predicted}
 
 
-#: A peak of the leading edge is the running maximum once the signal has fallen this many noise sigmas below it.
-_EDGE_PEAK_DROP_SIGMAS = 4.0
-
-
 def pulse_timing(filters: Sequence, fs: float):
     """Half-height timing of pulses through ``filters`` at ``fs`` (Hz): a
     :class:`impactline.bandwidth.PulseTiming`, or None without a low-pass filter."""
@@ -474,22 +470,19 @@ def _onset_offset(rising: np.ndarray, noise_rms: float, fs: float, timing=None) 
     start on, polarity applied. A band-limited step is symmetric about its half-height point (exactly so for a
     zero-phase filter), so for an event longer than the chain's rise time the first crossing of half the
     filtered peak, minus the delay of causal filters, estimates it. The first peak, not the largest, is the
-    reference, so a burst whose later sub-spikes are higher is timed at its first one: the peak is the running
-    maximum at the first point where the signal has fallen ``_EDGE_PEAK_DROP_SIGMAS`` noise sigmas below it.
+    reference, so a burst whose later sub-spikes are higher is timed at its first one
+    (:func:`impactline.bandwidth.leading_edge`, shared with the ``waveform`` measure's ``edge`` alignment).
     A pulse shorter than about the rise time, or one that decays while the chain rises, peaks lower and its
     filtered edge crosses half of that peak early; ``timing`` (:class:`impactline.bandwidth.PulseTiming`, from
     the branch's filters) gives the lead of the crossing over the start from the observed width at half height
     and tail asymmetry. Without ``timing`` (no low-pass filter) the crossing itself is returned.
     """
-    from .bandwidth import pulse_shape_figures
+    from .bandwidth import leading_edge
 
-    running_max = np.maximum.accumulate(rising)
-    fallen = np.flatnonzero(running_max - rising >= _EDGE_PEAK_DROP_SIGMAS * noise_rms) if noise_rms > 0 else []
-    peak_at = int(np.argmax(rising[:fallen[0]])) if len(fallen) else int(np.argmax(rising))
-    figures = pulse_shape_figures(rising, peak_at)
-    if figures is None:
+    edge = leading_edge(rising, noise_rms)
+    if edge is None:
         return 0.0
-    rise, width, asymmetry = figures
+    rise, width, asymmetry = edge.crossing, edge.width, edge.asymmetry
     return rise - timing.lead(width / fs, asymmetry) * fs if timing is not None else rise
 
 

@@ -27,6 +27,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 from impactline import Column, EventWindow, FeatureExtractor, Param, ParameterError
+from impactline.bandwidth import EDGE_LOOKBACK_SAMPLES, leading_edge
 
 __all__ = ["Waveform", "Waveform32", "Waveform128", "make_waveform_stage", "bin_average", "log_edges",
            "WAVEFORM_STAGES"]
@@ -34,6 +35,8 @@ __all__ = ["Waveform", "Waveform32", "Waveform128", "make_waveform_stage", "bin_
 NORMALIZATIONS = ("none", "peak", "charge", "duration")
 #: Fewest samples before the event for a ``pre`` baseline (else the detector's baseline is used).
 MIN_BASELINE_SAMPLES = 5
+#: Alignment points (``align``).
+ALIGNMENTS = ("edge", "onset", "peak")
 
 
 def bin_average(x: np.ndarray, edges: np.ndarray) -> np.ndarray:
@@ -96,13 +99,23 @@ def _parabolic_peak(y: np.ndarray, i: int) -> float:
 
 
 class Waveform(FeatureExtractor):
-    """The event's waveform with context, aligned at its onset or peak, resampled to a fixed length.
+    """The event's waveform with context, aligned on its leading edge, onset or peak, resampled to a fixed length.
 
     The waveform is the excursion from a baseline (sign kept: anodic events point up, cathodic down):
     by default the median of the ``pre`` window before the event start, or the detector's baseline.
     With a fixed time base the window runs from ``pre`` before to ``post`` after the alignment point:
-    the detector's event start (``onset``) or the largest excursion, refined to a
-    fraction of a sample by a parabola through its neighbours (``peak``). Adding ``"duration"`` to
+
+    * ``edge``: the instant the leading edge reaches half of the event's *first* peak, interpolated between
+      samples (:func:`impactline.bandwidth.leading_edge`, the same instant the runner reports as ``onset_s``
+      before its correction for the filters' lead). It depends on the waveform only, not on which sample
+      first crossed the detector's threshold, and a burst is anchored at its first sub-spike whichever is
+      highest.
+    * ``onset``: the detector's event start, a whole sample (the threshold crossing, which moves by a sample
+      with the noise: on a pulse of a few samples that is a visible shift).
+    * ``peak``: the largest excursion, refined to a fraction of a sample by a parabola through its
+      neighbours (a burst is anchored at whichever sub-spike is highest).
+
+    Adding ``"duration"`` to
     ``normalize`` stretches the time base instead: the event itself always fills the same middle points
     and ``duration_context`` of its duration is kept on each side (capped by ``pre``/``post``, the
     context the stage asks the runner for), which makes long and short events of one form alike.
@@ -128,8 +141,9 @@ class Waveform(FeatureExtractor):
     params: ClassVar[dict[str, Param]] = {
         "pre": Param(50e-6, unit="s", low=0, doc="window before the alignment point (fixed time base)"),
         "post": Param(200e-6, unit="s", low=0, doc="window after the alignment point (fixed time base)"),
-        "align": Param("onset", kind=str, choices=("onset", "peak"),
-                       doc="align on the detector's event start or on the (sub-sample) peak"),
+        "align": Param("edge", kind=str, choices=ALIGNMENTS,
+                       doc="align on the half-height instant of the first peak's edge (sub-sample), the "
+                           "detector's event start, or the (sub-sample) largest peak"),
         "normalize": Param(["peak"], kind=list, choices=NORMALIZATIONS,
                            doc="none, peak or charge (amplitude), plus duration (time base); e.g. [\"peak\"]"),
         "spacing": Param("linear", kind=str, choices=("linear", "log"),
@@ -180,9 +194,12 @@ class Waveform(FeatureExtractor):
         """Samples of context wanted before and after each event.
 
         One extra sample on each side keeps the interpolant's last interval inside the data; with peak
-        alignment the peak can sit anywhere in the event, which the window after the event end absorbs.
+        alignment the peak can sit anywhere in the event, which the window after the event end absorbs;
+        with edge alignment the anchor can lie up to :data:`impactline.bandwidth.EDGE_LOOKBACK_SAMPLES` before
+        the event start (as many more before it).
         """
-        return (math.ceil(self.pre * sample_rate_hz) + 1, math.ceil(self.post * sample_rate_hz) + 1)
+        extra = EDGE_LOOKBACK_SAMPLES if self.align == "edge" and not self.stretched else 0
+        return (math.ceil(self.pre * sample_rate_hz) + 1 + extra, math.ceil(self.post * sample_rate_hz) + 1)
 
     def measure(self, window: EventWindow) -> dict[str, Any]:
         """Cut, align, resample and normalize one event.
@@ -217,6 +234,9 @@ class Waveform(FeatureExtractor):
         else:
             if self.align == "peak":
                 anchor = start + _parabolic_peak(polarity * event, peak_index)
+            elif self.align == "edge":
+                edge = leading_edge(polarity * x[:end], float(window.event.noise_rms_A), start)
+                anchor = edge.crossing if edge is not None else float(start)
             else:
                 anchor = float(start)
             first = anchor - self.pre * fs
