@@ -270,3 +270,34 @@ def test_parameter_errors_name_the_parameter():
 def test_lookback_covers_max_duration_and_two_blocks():
     detector = ThresholdDetector(max_duration="10 ms", baseline_window="50 ms")
     assert detector.lookback_samples(100e3) == 1000 + 2 * 5000 + 1
+
+
+def test_detectors_sharing_a_memo_find_exactly_what_each_finds_alone(monkeypatch):
+    # A comparison hands the detectors fed the same samples one memo (Detector.start_shared); threshold
+    # detectors with the same baseline window then compute each block's level and noise once. Interleaved
+    # chunks, as a comparison feeds them; different k, release and polarity; a different window too.
+    x, fs = _busy_record()
+    variants = [ThresholdDetector(k_sigma=5), ThresholdDetector(k_sigma=4, merge_gap="300 us"),
+                ThresholdDetector(k_sigma=6, release_sigma=2, polarity="both"),
+                ThresholdDetector(k_sigma=5, baseline_window="30 ms"), ThresholdDetector(k_sigma=4.5)]
+    alone = [signature(detect_array(d, x, fs, 7000)) for d in variants]
+    noise_calls = []
+    original = ThresholdDetector._noise
+    monkeypatch.setattr(ThresholdDetector, "_noise", lambda self, r: noise_calls.append(1) or original(self, r))
+    memo: dict = {}
+    states = [d.start_shared(fs, memo) for d in variants]
+    shared: list[list] = [[] for _ in variants]
+    for at in range(0, x.size, 7000):
+        for i, d in enumerate(variants):
+            events, states[i] = d.process(x[at:at + 7000], at, states[i])
+            shared[i] += events
+        # Entries are dropped once every sharer has read them: the memo stays small however long the stream.
+        assert all(len(book.values) <= 4 for book in memo.values())
+    for i, d in enumerate(variants):
+        shared[i] += d.finish(states[i])
+    assert [signature(events) for events in shared] == alone
+    assert all(len(events) > 10 for events in alone)
+    # Levels: one book per window (100 ms, 30 ms); noise: one per window and polarity, each block's noise
+    # computed once per book (30 blocks of 100 ms, 100 of 30 ms), not once per detector.
+    assert len(memo) == 5
+    assert len(noise_calls) == 30 + 30 + 100

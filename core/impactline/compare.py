@@ -835,6 +835,7 @@ class _FanOut:
         self.branches: dict[int, EventBranch] = {}
         self.seconds = [0.0] * len(comparison.variants)
         self.root = self._start(comparison._tree)
+        memos = self._memos(self.root, {})
         for index, variant in enumerate(comparison.variants):
             if index in self.errors:
                 continue
@@ -849,10 +850,20 @@ class _FanOut:
                     comparison._pulse_timings[(index, fs)] = pulse_timing(pipeline.build_filters(), fs)
                 self.branches[index] = EventBranch(
                     [], pipeline.build_detector(), pipeline.build_measures(), fs, path, comparison._schemas[index],
-                    pipeline.material(), chain=chain, timing=comparison._pulse_timings[(index, fs)])
+                    pipeline.material(), chain=chain, timing=comparison._pulse_timings[(index, fs)],
+                    memo=memos.get(index))
             except Exception as exc:
                 self.errors[index] = describe_error(exc)
         self._share_noise(self.root)
+
+    def _memos(self, node: _LiveNode, out: dict[int, dict]) -> dict[int, dict]:
+        """One memo per node, for the detectors of the variants fed its samples (Detector.start_shared)."""
+        memo: dict = {}
+        for index in node.variants:
+            out[index] = memo
+        for child in node.children:
+            self._memos(child, out)
+        return out
 
     def _share_noise(self, node: _LiveNode) -> None:
         for index in node.variants:

@@ -202,10 +202,14 @@ class EventBranch:
         Onset timing of pulses through the filter chain feeding the detector (default: made from
         ``filters`` by :func:`pulse_timing`; a comparison, whose branches get samples already filtered,
         passes the variant's own).
+    memo : dict, optional
+        Shared by the detectors of branches fed the very same samples (see
+        :meth:`impactline.stages.Detector.start_shared`); None for a branch on its own.
     """
 
     def __init__(self, filters, detector, measures, fs: float, path: Path, schema: pa.Schema, material=None,
-                 chain: FilterInfo | None = None, noise: NoiseMeter | None = None, timing=None):
+                 chain: FilterInfo | None = None, noise: NoiseMeter | None = None, timing=None,
+                 memo: dict | None = None):
         self.filters = list(filters)
         self.detector = detector
         self.measures = list(measures)
@@ -215,7 +219,7 @@ class EventBranch:
         self.material = material
         try:
             self.filter_states = [f.start(fs) for f in self.filters]
-            self.detector_state = detector.start(fs)
+            self.detector_state = detector.start(fs) if memo is None else detector.start_shared(fs, memo)
         except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
             raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
         self.chain = chain if chain is not None else chain_info(self.filters, fs)

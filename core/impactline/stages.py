@@ -255,6 +255,17 @@ class Detector(Stage):
         """Return the initial state."""
         raise NotImplementedError
 
+    def start_shared(self, sample_rate_hz: float, memo: dict) -> Any:
+        """Return the initial state of a stream whose samples other detectors also receive.
+
+        ``memo`` is one dict per stream, shared by every detector fed the very same samples (the variants of
+        a comparison after the same filters). A detector may keep there results that depend only on the
+        samples and on the settings it puts in their key (start keys with its name), so that another
+        detector with those settings reuses them instead of computing them again. Events must be the same,
+        bit for bit, as with :meth:`start`. The default ignores ``memo``.
+        """
+        return self.start(sample_rate_hz)
+
     def process(self, x: np.ndarray, first_index: int, state: Any) -> tuple[list[Event], Any]:
         """Consume the next chunk (``x[0]`` has absolute index ``first_index``).
 

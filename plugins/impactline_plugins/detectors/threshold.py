@@ -53,6 +53,29 @@ def _ranked_pair(ordered: np.ndarray, half: int, rank: int) -> tuple[float, floa
     return (float(side[:k].max()) if k else float(ordered[half])), float(side[k])
 
 
+class _SharedBlocks:
+    """Per-block results kept for the other detectors fed the same samples (``Detector.start_shared``).
+
+    Entries are dropped once every detector sharing them has read past them, so memory stays bounded.
+    """
+
+    def __init__(self) -> None:
+        self.values: dict[int, Any] = {}
+        self.progress: dict[int, int] = {}
+        self.low = 0
+
+    def join(self, consumer: int) -> None:
+        self.progress[consumer] = 0
+
+    def done(self, consumer: int, upto: int) -> None:
+        """``consumer`` will not ask for blocks below ``upto`` again."""
+        self.progress[consumer] = upto
+        floor = min(self.progress.values())
+        while self.low < floor:
+            self.values.pop(self.low, None)
+            self.low += 1
+
+
 @dataclass
 class _Piece:
     """A kept run piece, or an event being assembled from merged pieces."""
@@ -98,6 +121,8 @@ class _State:
     region_s: np.ndarray = field(default_factory=lambda: np.empty(0))   # noise sigma, A
     tracks: list[_Track] = field(default_factory=list)
     ready: list[Event] = field(default_factory=list)
+    shared_levels: _SharedBlocks | None = None   # block -> (level, centre), shared with other detectors
+    shared_sigmas: _SharedBlocks | None = None   # block -> noise sigma, shared likewise
 
 
 class ThresholdDetector(Detector):
@@ -208,6 +233,22 @@ class ThresholdDetector(Detector):
         state.tracks = [_Track(sign=s, resume=0) for s in signs]
         return state
 
+    def start_shared(self, sample_rate_hz: float, memo: dict) -> _State:
+        """Initial state of a stream other detectors also receive: block levels and noise are computed once.
+
+        A block's baseline level and centre depend only on the samples and ``baseline_window``; its noise
+        also on ``polarity`` (which side is quiet). Detectors of this class with the same settings, whatever
+        their ``k_sigma``, ``release_sigma`` or durations, read them from ``memo`` instead of partitioning
+        the block again; the events are the same, bit for bit.
+        """
+        st = self.start(sample_rate_hz)
+        st.shared_levels = memo.setdefault((type(self), "levels", st.block), _SharedBlocks())
+        st.shared_levels.join(id(st))
+        if self.noise_rms is None:
+            st.shared_sigmas = memo.setdefault((type(self), "sigmas", st.block, self.polarity), _SharedBlocks())
+            st.shared_sigmas.join(id(st))
+        return st
+
     def process(self, x: np.ndarray, first_index: int, state: _State) -> tuple[list[Event], _State]:
         """Consume the next chunk of filtered current (A); ``x[0]`` has absolute index ``first_index``."""
         st = state
@@ -251,6 +292,11 @@ class ThresholdDetector(Detector):
 
     # ------------------------------------------------------------------ baseline and noise
     def _block_level(self, st: _State, j: int, a: int, b: int) -> None:
+        shared = st.shared_levels
+        if shared is not None and j in shared.values:
+            st.levels[j], st.centres[j] = shared.values[j]
+            shared.done(id(st), j + 1)
+            return
         xb = st.buf.view(a, b)
         n = xb.size
         half = n // 2
@@ -270,6 +316,9 @@ class ThresholdDetector(Detector):
             level = upper if kept % 2 else 0.5 * (lower + upper)
         st.levels[j] = level
         st.centres[j] = (a - st.origin) + (b - a - 1) / 2.0
+        if shared is not None:
+            shared.values[j] = (level, st.centres[j])
+            shared.done(id(st), j + 1)
 
     def _baseline(self, st: _State, j: int, pos: np.ndarray) -> np.ndarray:
         """Baseline (A) at positions ``pos`` (samples from origin, ascending) inside block ``j``."""
@@ -330,7 +379,17 @@ class ThresholdDetector(Detector):
         baseline = self._baseline(st, j, np.arange(a - st.origin, b - st.origin, dtype=np.float64))
         d = x - baseline
         if sigma is None:
-            sigma = self.noise_rms if self.noise_rms is not None else self._noise(d)
+            shared = st.shared_sigmas
+            if self.noise_rms is not None:
+                sigma = self.noise_rms
+            elif shared is not None and j in shared.values:
+                sigma = shared.values[j]
+            else:
+                sigma = self._noise(d)
+                if shared is not None:
+                    shared.values[j] = sigma
+            if shared is not None:
+                shared.done(id(st), j + 1)
             st.sigmas[j] = sigma
         st.region_d = np.concatenate((st.region_d, d))
         st.region_b = np.concatenate((st.region_b, baseline))
