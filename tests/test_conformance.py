@@ -40,6 +40,31 @@ def test_detector_chunking_changes_nothing(entry):
     assert len(events) > 0, "the contract signal holds 40 clear events and two steps"
 
 
+@pytest.mark.parametrize("entry", REGISTRY.stages("detector"), ids=_ids("detector"))
+def test_detector_sharing_a_memo_changes_nothing(entry):
+    # Detector.start_shared: two detectors fed the same samples with one memo (as in a comparison) find
+    # exactly what each finds alone, chunk by chunk.
+    x, fs = synthetic_signal()
+    chunk = 65536
+
+    def run(detector, state):
+        events = []
+        for at in range(0, x.size, chunk):
+            found, state = detector.process(x[at:at + chunk], at, state)
+            events += found
+        return events + detector.finish(state)
+
+    def key(events):
+        return [(e.start_index, e.end_index, e.baseline_A, e.noise_rms_A, e.polarity) for e in events]
+
+    first, second = entry.cls(), entry.cls()
+    alone = key(run(first, first.start(fs)))
+    memo: dict = {}
+    states = [first.start_shared(fs, memo), second.start_shared(fs, memo)]
+    assert key(run(first, states[0])) == alone
+    assert key(run(second, states[1])) == alone
+
+
 @pytest.mark.parametrize("entry", REGISTRY.stages("measure"), ids=_ids("measure"))
 def test_measure_survives_awkward_events(entry):
     check_measure_robust(entry.cls())
