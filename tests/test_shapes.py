@@ -43,6 +43,7 @@ from impactline_plugins.classifiers.cluster import (
     elbow,
     merge_posterior,
     relabel_by_size,
+    step_silhouettes,
 )
 from impactline_plugins.measures.waveform import WAVEFORM_STAGES, Waveform, bin_average, log_edges, make_waveform_stage
 from scipy.integrate import quad
@@ -573,6 +574,65 @@ def test_choice_of_the_number_of_clusters():
         choose_combination(combination, axis="log")
 
 
+def _silhouette_reference(X, labels):
+    """Mean silhouette written out from Rousseeuw (1987), J. Comput. Appl. Math. 20:53-65 (a singleton: s = 0)."""
+    distance = np.sqrt(((X[:, None, :] - X[None, :, :]) ** 2).sum(axis=2))
+    values = []
+    for i in range(len(X)):
+        own = labels == labels[i]
+        if own.sum() == 1:
+            values.append(0.0)
+            continue
+        a = distance[i, own].sum() / (own.sum() - 1)
+        b = min(distance[i, labels == c].mean() for c in np.unique(labels) if c != labels[i])
+        values.append((b - a) / max(a, b))
+    return float(np.mean(values))
+
+
+def test_silhouette_rule_keeps_the_step_with_the_largest_mean_silhouette():
+    # Four classes, BIC fits five Gaussians (class 3 is two blobs 3 sigma apart): the step with the largest
+    # mean silhouette is the four classes; each step's value is Rousseeuw's, computed on all the events here.
+    table, y = _two_blob_class()
+    stage = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6, count_rule="silhouette")
+    out = stage.fit_predict(table)
+    assert out["cluster_count"][0] == 4 and adjusted_rand_score(y, out["cluster"]) > 0.95
+    entropy = [r for r in stage.selection_.to_pylist() if r["criterion"] == "entropy"]
+    assert [r["k"] for r in entropy] == [5, 4, 3, 2, 1] and entropy[1]["chosen"]
+    assert {r["decision"] for r in entropy} == {"silhouette"} and entropy[-1]["silhouette"] is None
+    X = embed(table, "features", features=["a", "b"]).X
+    posterior = stage.mixture_.predict_proba(X)[:, stage.component_order_]
+    for row, groups in zip(entropy[:-1], stage.combination_.groups, strict=False):
+        labels = np.argmax(merge_posterior(posterior, groups), axis=1)
+        assert row["silhouette"] == pytest.approx(_silhouette_reference(X, labels), rel=1e-9)
+    assert max(r["silhouette"] for r in entropy[:-1]) == entropy[1]["silhouette"]
+    # The default rule leaves the column empty (no extra cost).
+    elbow_stage = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6)
+    elbow_stage.fit_predict(table)
+    assert all(r["silhouette"] is None for r in elbow_stage.selection_.to_pylist())
+
+    # Subsampled: the same rows for every step, drawn with the seed.
+    sampled = step_silhouettes(X, posterior, stage.combination_, seed=3, sample=200)
+    assert np.array_equal(sampled, step_silhouettes(X, posterior, stage.combination_, seed=3, sample=200),
+                          equal_nan=True)
+    rows = np.sort(np.random.default_rng(3).choice(len(X), size=200, replace=False))
+    labels = np.argmax(merge_posterior(posterior[rows], stage.combination_.groups[0]), axis=1)
+    assert sampled[0] == pytest.approx(_silhouette_reference(X[rows], labels), rel=1e-9) and np.isnan(sampled[-1])
+
+
+def test_choice_by_silhouette():
+    # Four components, hard posteriors: the choice follows the silhouette given, not the entropy plot.
+    t = np.repeat(np.eye(4), 50, axis=0)
+    combination = combine_components(t)
+    assert choose_combination(combination, silhouette=np.array([0.2, 0.5, 0.7, 0.3]))[::2] == (2, "silhouette")
+    # One cluster left is never a candidate, NaN steps are skipped, ties go to the step with more clusters.
+    assert choose_combination(combination, silhouette=np.array([0.2, np.nan, 0.1, 0.9]))[::2] == (0, "silhouette")
+    assert choose_combination(combination, silhouette=np.array([0.4, 0.6, 0.6, np.nan]))[::2] == (1, "silhouette")
+    assert choose_combination(combination, silhouette=np.full(4, np.nan))[::2] == (0, "few")
+    assert choose_combination(combination, clusters=3, silhouette=np.zeros(4))[::2] == (1, "fixed")
+    with pytest.raises(ValueError, match="one value per step"):
+        choose_combination(combination, silhouette=np.zeros(3))
+
+
 def test_density_leaves_outliers_unassigned_also_beyond_the_fitted_sample():
     from sklearn.datasets import make_blobs
 
@@ -760,6 +820,17 @@ def test_cluster_command_combines_components_and_records_the_entropy(tmp_path, c
         clusters.select(["cluster", "cluster_probability"]))
     with pytest.raises(ImpactlineError, match="add --combine entropy"):
         _cli(["cluster", str(tmp_path / "run"), "--method", "gmm", "--combine", "none", "--clusters", "3"])
+    with pytest.raises(ImpactlineError, match="add --combine entropy"):
+        _cli(["cluster", str(tmp_path / "run"), "--method", "gmm", "--combine", "none", "--count-rule", "silhouette"])
+    assert "silhouette" not in report
+    assert _cli(argv + ["--count-rule", "silhouette"]) == 0
+    report = capsys.readouterr().out
+    assert "largest mean silhouette (Rousseeuw 1987)" in report and "silhouette  merge" in report
+    entropy = [r for r in pq.read_table(tmp_path / "run" / "cluster_selection.parquet").to_pylist()
+               if r["criterion"] == "entropy"]
+    scored = [r for r in entropy if r["k"] >= 2]
+    assert all(r["decision"] == "silhouette" for r in entropy) and all(r["silhouette"] is not None for r in scored)
+    assert next(r for r in entropy if r["chosen"])["silhouette"] == max(r["silhouette"] for r in scored)
     with pytest.raises(ImpactlineError, match="does not apply"):
         _cli(["cluster", str(tmp_path / "run"), "--method", "kmeans", "--combine", "entropy"])
 

@@ -567,8 +567,9 @@ def selection_table(rows: Sequence[Mapping[str, Any]]) -> pa.Table:
     ``lower`` or, for ``entropy``, ``elbow``), ``chosen``. Rows of a combination of mixture components
     (``criterion = "entropy"``, one per number of clusters from the mixture's down to 1) also fill
     ``merged_events`` (cumulative events merged), ``elbow_rss``, ``merge`` (the two clusters joined at this
-    step, as component sets), ``groups`` (the clusters, as component sets) and ``decision`` (how the count
-    was chosen: ``elbow``, ``flat``, ``few`` or ``fixed``); other rows leave them null.
+    step, as component sets), ``groups`` (the clusters, as component sets), ``silhouette`` (the step's mean
+    silhouette, when the count rule is the silhouette) and ``decision`` (how the count was chosen: ``elbow``,
+    ``silhouette``, ``flat``, ``few`` or ``fixed``); other rows leave them null.
     """
     columns = {
         "method": Column("string", "", "clustering method"),
@@ -579,9 +580,11 @@ def selection_table(rows: Sequence[Mapping[str, Any]]) -> pa.Table:
         "chosen": Column("bool", "", "the count that was kept"),
         "merged_events": Column("int64", "", "entropy rows: cumulative number of events in merged clusters"),
         "elbow_rss": Column("float64", "", "entropy rows: residual sum of squares of the elbow fit at this count"),
+        "silhouette": Column("float64", "", "entropy rows: mean silhouette of this step (count_rule silhouette)"),
         "merge": Column("string", "", "entropy rows: the two clusters (component sets) merged at this step"),
         "groups": Column("string", "", "entropy rows: the clusters as sets of mixture components"),
-        "decision": Column("string", "", "entropy rows: elbow, flat (no merge), few (too few components), fixed"),
+        "decision": Column("string", "", "entropy rows: elbow, silhouette, flat (no merge), few (too few "
+                                         "components), fixed"),
     }
     schema = schema_for(columns)
     return pa.Table.from_arrays([pa.array([row.get(name) for row in rows], type=schema.field(name).type)

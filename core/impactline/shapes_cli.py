@@ -6,7 +6,8 @@ cluster RUN... [--method gmm|kmeans|density] [--k auto|N] [--combine none|entrop
     ``cluster_prototypes.parquet``, ``cluster_sizes.parquet`` and ``cluster_selection.parquet``. With
     ``gmm``, ``--combine entropy`` merges the BIC mixture's components into clusters by the entropy
     criterion of Baudry et al. (2010); the entropy of each step and the count chosen go to the selection
-    table.
+    table. ``--count-rule silhouette`` keeps the step with the largest mean silhouette (Rousseeuw 1987)
+    instead of the elbow of the entropy plot, and records each step's silhouette.
 train RUN... --labels FILE --out MODEL
     Trains a random forest on hand-labelled events (CSV or Parquet: file, event_id, label), prints the
     cross-validated accuracy and confusion matrix, and saves the model as plain arrays (no pickle).
@@ -85,6 +86,9 @@ def register_cli(subparsers: argparse._SubParsersAction) -> None:
                         "merged events (normalized, default) or against the number of clusters (standard)")
     p.add_argument("--clusters", type=int, default=None,
                    help="gmm with --combine entropy: merge down to this many clusters instead of the elbow's")
+    p.add_argument("--count-rule", choices=("elbow", "silhouette"), default=None,
+                   help="gmm with --combine entropy: keep the step at the elbow of the entropy plot (default) or "
+                        "the one with the largest mean silhouette (Rousseeuw 1987)")
     p.add_argument("--min-cluster-size", type=int, default=None, help="density method: fewest events per cluster")
     p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
@@ -215,18 +219,18 @@ def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
         params["max_k"] = args.max_k
     if args.min_cluster_size is not None:
         params["min_cluster_size"] = args.min_cluster_size
-    for key in ("combine", "elbow", "clusters"):
+    for key in ("combine", "elbow", "clusters", "count_rule"):
         if getattr(args, key, None) is not None:
             params[key] = getattr(args, key)
     for key in list(params):
         if key not in declared:
-            if key in ("k", "max_k", "min_cluster_size", "combine", "elbow", "clusters"):
+            if key in ("k", "max_k", "min_cluster_size", "combine", "elbow", "clusters", "count_rule"):
                 raise ImpactlineError(f"--{key.replace('_', '-')} does not apply to --method {args.method}")
             params.pop(key)
     combine = params.get("combine", declared["combine"].default if "combine" in declared else None)
-    if ("elbow" in params or "clusters" in params) and combine != "entropy":
-        raise ImpactlineError("--elbow and --clusters say how mixture components are combined into clusters; "
-                              "add --combine entropy")
+    if ("elbow" in params or "clusters" in params or "count_rule" in params) and combine != "entropy":
+        raise ImpactlineError("--elbow, --clusters and --count-rule say how mixture components are combined into "
+                              "clusters; add --combine entropy")
     return params
 
 
@@ -293,17 +297,24 @@ def summarize_clusters(result: dict[str, Any], seconds: float) -> str:
 
 _DECISIONS = {"elbow": "elbow of the entropy plot", "flat": "no merge: the entropy plot is flat (components "
                                                              "barely overlap; see min_gain)",
-              "few": "no merge: too few components for an elbow", "fixed": "count given (--clusters)"}
+              "few": "no merge: too few components for an elbow", "fixed": "count given (--clusters)",
+              "silhouette": "largest mean silhouette (Rousseeuw 1987)"}
 
 
 def _combination_report(rows: list[dict[str, Any]]) -> str:
     """Lines of the summary for the combination of mixture components (selection rows with entropy)."""
     decision = rows[0].get("decision") or ""
+    with_silhouette = any(row.get("silhouette") is not None for row in rows)
     lines = [f"components combined by entropy (Baudry et al. 2010); {_DECISIONS.get(decision, decision)}:",
-             "  clusters  entropy (nats)  merged events  merge"]
+             "  clusters  entropy (nats)  merged events" + ("  silhouette" if with_silhouette else "") + "  merge"]
     for row in rows:
         mark = "  <- chosen" if row["chosen"] else ""
-        lines.append(f"  {row['k']:8d}  {row['score']:14.4g}  {row['merged_events']:13d}  {row['merge'] or '-'}{mark}")
+        silhouette = ""
+        if with_silhouette:
+            value = row.get("silhouette")
+            silhouette = f"  {value:10.3f}" if value is not None else f"  {'-':>10s}"
+        lines.append(f"  {row['k']:8d}  {row['score']:14.4g}  {row['merged_events']:13d}{silhouette}  "
+                     f"{row['merge'] or '-'}{mark}")
     return "\n".join(lines)
 
 

@@ -21,8 +21,10 @@ Quality
     (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). The Gaussian mixture runs with and
     without combining its components by entropy (Baudry et al. 2010); for the combined runs the report also
     gives the ARI of every step of the merge hierarchy (``hierarchy``: clusters, ARI), which shows what the
-    best choice of the count would have given. For the trained classifier the matched events are split in
-    halves (stratified, seeded): ``impactline train`` on one half, the saved model applied to the other.
+    best choice of the count would have given; with ``count_rule = "silhouette"`` also the mean silhouette of
+    each step (Rousseeuw 1987), the rule that then chooses the count. For the trained classifier the matched
+    events are split in halves (stratified, seeded): ``impactline train`` on one half, the saved model applied
+    to the other.
 Scaling
     Synthetic run folders (1,000 parts in ``events.parquet/``) of shapes drawn around five templates
     plus noise; each size is clustered in a fresh process, timing ``cluster_runs`` (reading, embedding,
@@ -49,7 +51,7 @@ import pytest
 SHAPES = ("spike", "burst", "step", "blip", "tail_spike")
 #: Clusterings compared (method, parameters); the first is the one the goal is checked on.
 CLUSTERINGS = (("gmm", {}), ("gmm", {"combine": "none"}), ("gmm", {"elbow": "standard"}),
-               ("kmeans", {}), ("density", {}), ("kmeans", {"k": 5}))
+               ("gmm", {"count_rule": "silhouette"}), ("kmeans", {}), ("density", {}), ("kmeans", {"k": 5}))
 MIN_SNR = 10.0
 #: The waveform measure's alignment in the benchmark's pipeline (``--align`` to compare others).
 ALIGN = "edge"
@@ -132,6 +134,8 @@ def _mixture_report(result: dict, y: np.ndarray) -> dict:
         rows = [r for r in result["selection"].to_pylist() if r["criterion"] == "entropy"]
         out.update(hierarchy=hierarchy, decision=rows[0]["decision"],
                    entropy_nats=[round(r["score"], 4) for r in rows], merged_events=[r["merged_events"] for r in rows])
+        if any(r["silhouette"] is not None for r in rows):
+            out["silhouette"] = [None if r["silhouette"] is None else round(r["silhouette"], 4) for r in rows]
     return out
 
 

@@ -27,14 +27,16 @@ from impactline import Classifier, Column, Param
 from impactline.shapes import EMBEDDINGS, SHAPE_TRANSFORMS, Embedding, embed, selection_table
 
 __all__ = ["KMeansShapes", "GaussianMixtureShapes", "DensityShapes", "relabel_by_size", "SILHOUETTE_SAMPLE",
-           "COMBINE_METHODS", "ELBOW_AXES", "Combination", "assignment_entropy", "merge_posterior",
-           "combine_components", "elbow", "choose_combination"]
+           "COMBINE_METHODS", "ELBOW_AXES", "COUNT_RULES", "Combination", "assignment_entropy", "merge_posterior",
+           "combine_components", "elbow", "step_silhouettes", "choose_combination"]
 
 #: Most events the silhouette criterion is computed on.
 SILHOUETTE_SAMPLE = 4000
 #: Ways of turning mixture components into clusters, and axes of the entropy plot.
 COMBINE_METHODS: tuple[str, ...] = ("none", "entropy")
 ELBOW_AXES: tuple[str, ...] = ("normalized", "standard")
+#: Rules choosing the step of the merge hierarchy: the entropy plot's elbow, or the largest mean silhouette.
+COUNT_RULES: tuple[str, ...] = ("elbow", "silhouette")
 
 _COMMON_PARAMS: dict[str, Param] = {
     "embedding": Param("pca+features", kind=str, choices=EMBEDDINGS,
@@ -353,8 +355,45 @@ def elbow(x: np.ndarray, y: np.ndarray) -> tuple[int, np.ndarray]:
     return int(np.nanargmin(rss)), rss
 
 
+def step_silhouettes(X: np.ndarray, posterior: np.ndarray, combination: Combination, seed: int = 0,
+                     sample: int = SILHOUETTE_SAMPLE) -> np.ndarray:
+    """Mean silhouette width of each step of a merge hierarchy (Rousseeuw 1987).
+
+    Rousseeuw (1987), "Silhouettes: a graphical aid to the interpretation and validation of cluster
+    analysis", J. Comput. Appl. Math. 20:53-65: per point ``s = (b - a) / max(a, b)``, ``a`` the mean
+    Euclidean distance to the other points of its cluster, ``b`` the smallest mean distance to the points of
+    another cluster; the mean over points is highest for compact, well-separated clusters (his
+    "silhouette coefficient" is its largest value over the numbers of clusters). Each step's events go to
+    their most probable combined cluster. The silhouette costs the square of the number of points, so it is
+    computed on at most ``sample`` rows drawn with ``seed`` (the same rows for every step).
+
+    Parameters
+    ----------
+    X : ndarray, shape (n_events, n_dims)
+        Embedded events.
+    posterior : ndarray, shape (n_events, K)
+        Posterior probabilities of the mixture's components for the same events (the combination's
+        component numbering).
+    combination : Combination
+    seed : int
+        Seed of the subsample.
+    sample : int
+        Most events used (0: all).
+
+    Returns
+    -------
+    ndarray, shape (K,)
+        Mean silhouette of each step, -1 to 1; NaN where the step leaves fewer than 2 clusters (or as many
+        clusters as sampled events) among the sampled events.
+    """
+    rows = _sample(X.shape[0], sample, np.random.default_rng(seed))
+    Xs, ts = np.asarray(X)[rows], np.asarray(posterior)[rows]
+    return np.array([_silhouette(Xs, np.argmax(merge_posterior(ts, groups), axis=1), seed)
+                     for groups in combination.groups])
+
+
 def choose_combination(combination: Combination, axis: str = "normalized", min_gain: float = 0.0,
-                       clusters: int = 0) -> tuple[int, np.ndarray, str]:
+                       clusters: int = 0, silhouette: np.ndarray | None = None) -> tuple[int, np.ndarray, str]:
     """Which step of a :class:`Combination` to keep.
 
     Parameters
@@ -370,7 +409,12 @@ def choose_combination(combination: Combination, axis: str = "normalized", min_g
         merge costs almost nothing, the entropy plot is flat, and the elbow of a flat plot is arbitrary; this
         keeps the mixture's components then. 0 disables the check.
     clusters : int
-        Number of clusters wanted; 0 chooses it (elbow). Larger than the number of components: all kept.
+        Number of clusters wanted; 0 chooses it (elbow, or silhouette when given). Larger than the number of
+        components: all kept.
+    silhouette : ndarray, shape (K,), optional
+        Mean silhouette of each step (:func:`step_silhouettes`). When given, the step with the largest one
+        among those with at least 2 clusters is kept instead of the elbow (the first, i.e. the one with more
+        clusters, on ties); ``axis`` and ``min_gain`` are then not used.
 
     Returns
     -------
@@ -380,12 +424,20 @@ def choose_combination(combination: Combination, axis: str = "normalized", min_g
         Elbow fit residual sum of squares per step (NaN where not a candidate or not fitted).
     reason : str
         ``elbow``, ``flat`` (elbow rejected by ``min_gain``), ``few`` (fewer than 3 steps: no elbow can be
-        fitted; the components are kept) or ``fixed``.
+        fitted, or no step with a silhouette; the components are kept), ``silhouette`` or ``fixed``.
     """
     k = combination.entropy.size
     rss = np.full(k, math.nan)
     if clusters:
         return k - min(clusters, k), rss, "fixed"
+    if silhouette is not None:
+        silhouette = np.asarray(silhouette, dtype=np.float64)
+        if silhouette.shape != (k,):
+            raise ValueError(f"silhouette must hold one value per step ({k}), got shape {silhouette.shape}")
+        candidates = np.flatnonzero((combination.counts >= 2) & np.isfinite(silhouette))
+        if not candidates.size:
+            return 0, rss, "few"
+        return int(candidates[np.argmax(silhouette[candidates])]), rss, "silhouette"
     if k < 3:
         return 0, rss, "few"
     if axis == "normalized":
@@ -414,7 +466,10 @@ class GaussianMixtureShapes(_ShapeClusterer):
     each time the pair whose union lowers the entropy of the posterior assignment most, and the number of
     clusters is the elbow of the entropy plot (Baudry, Raftery, Celeux, Lo & Gottardo 2010, J. Comput.
     Graph. Stat. 19:332-353; :func:`combine_components`, :func:`choose_combination`). A combined cluster's
-    posterior is the sum of its components' posteriors.
+    posterior is the sum of its components' posteriors. With ``count_rule = "silhouette"`` the step of the
+    merge hierarchy with the largest mean silhouette (Rousseeuw 1987; :func:`step_silhouettes`, on up to
+    4000 of the fitted events) is kept instead; on the simulator's recordings it merges too far
+    (docs/shapes.md), so the elbow stays the default.
 
     Each event goes to its most probable cluster; ``cluster_probability`` is that posterior probability
     and ``cluster_component`` its most probable mixture component (numbered by size, like clusters).
@@ -446,7 +501,10 @@ class GaussianMixtureShapes(_ShapeClusterer):
                           doc="least mean entropy decrease per merged event before the elbow, in nats "
                               "(0.01: about 1.4 % of them split 50:50); below it the components are kept"),
         "clusters": Param(0, kind=int, low=0, high=100,
-                          doc="with combine: number of clusters to merge into; 0 chooses it by the elbow"),
+                          doc="with combine: number of clusters to merge into; 0 chooses it by count_rule"),
+        "count_rule": Param("elbow", kind=str, choices=COUNT_RULES,
+                            doc="with combine: step of the merge hierarchy kept, the elbow of the entropy plot "
+                                "or the largest mean silhouette (Rousseeuw 1987)"),
     }
     columns: ClassVar[dict[str, Column]] = {
         "cluster": _CLUSTER_COLUMN,
@@ -486,9 +544,13 @@ class GaussianMixtureShapes(_ShapeClusterer):
         self.combination_ = None
         if self.combine == "entropy":
             combination = combine_components(posterior[fit_rows])
-            step, rss, reason = choose_combination(combination, self.elbow, self.min_gain, self.clusters)
+            silhouette = None
+            if self.count_rule == "silhouette" and not self.clusters:
+                silhouette = step_silhouettes(Xf, posterior[fit_rows], combination, self.seed)
+            step, rss, reason = choose_combination(combination, self.elbow, self.min_gain, self.clusters,
+                                                   silhouette)
             self.combination_ = combination
-            rows += _combination_rows(self.method, combination, step, rss, reason)
+            rows += _combination_rows(self.method, combination, step, rss, reason, silhouette)
             posterior = merge_posterior(posterior, combination.groups[step])
         labels = np.argmax(posterior, axis=1)
         return labels, {"cluster_probability": posterior[np.arange(X.shape[0]), labels],
@@ -496,7 +558,7 @@ class GaussianMixtureShapes(_ShapeClusterer):
 
 
 def _combination_rows(method: str, combination: Combination, step: int, rss: np.ndarray,
-                      reason: str) -> list[dict[str, Any]]:
+                      reason: str, silhouette: np.ndarray | None = None) -> list[dict[str, Any]]:
     """Selection-table rows of a combination: one per number of clusters, from the mixture's down to 1."""
     rows = []
     for j, groups in enumerate(combination.groups):
@@ -505,6 +567,7 @@ def _combination_rows(method: str, combination: Combination, step: int, rss: np.
                      "score": float(combination.entropy[j]), "better": "elbow", "chosen": j == step,
                      "merged_events": int(combination.merged_events[j]),
                      "elbow_rss": None if math.isnan(rss[j]) else float(rss[j]),
+                     "silhouette": None if silhouette is None or math.isnan(silhouette[j]) else float(silhouette[j]),
                      "merge": None if pair is None else "+".join(_group_text(g) for g in pair),
                      "groups": " ".join(_group_text(g) for g in groups)})
     return rows
