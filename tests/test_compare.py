@@ -240,6 +240,7 @@ def test_scores_by_hand_on_constructed_tables(tmp_path: Path):
     detections = pa.table({
         "file": ["data/rec.bin"] * 5, "event_id": [0, 1, 2, 3, 4],
         "start_s": [0.0101, 0.0202, 0.0500, 0.0512, 0.0700], "end_s": [0.0110, 0.0210, 0.0511, 0.0520, 0.0710],
+        "onset_s": [0.01003, 0.02001, 0.04999, 0.0513, 0.0701],
         "charge_C": [2.2e-15, 1.9e-15, 1.6e-15, 1.4e-15, 0.5e-15], "snr": [19.0, 18.0, 9.5, 8.5, 4.5]})
     scores = {(r["stratum"], r["value"]): r for r in score_against_truth(
         truth, detections, FS, durations={"data/rec.bin": 2.0}, variant="v").to_pylist()}
@@ -250,7 +251,11 @@ def test_scores_by_hand_on_constructed_tables(tmp_path: Path):
     assert everything["precision"] == pytest.approx(3 / 5) and everything["recall"] == pytest.approx(3 / 5)
     assert everything["f1"] == pytest.approx(3 / 5)
     assert everything["false_per_s"] == pytest.approx(2 / 2.0)
-    assert everything["onset_error_median_s"] == pytest.approx(0.0001)  # onsets off by 0.1, 0.2 and 0 ms
+    assert everything["start_error_median_s"] == pytest.approx(0.0001)  # starts off by 0.1, 0.2 and 0 ms
+    # onset_s of the same matched detections: off by +30, +10 and -10 us; median +10 us.
+    assert everything["onset_error_median_s"] == pytest.approx(1e-5)
+    without = score_against_truth(truth, detections.drop_columns(["onset_s"]), FS, variant="v").to_pylist()[0]
+    assert without["onset_error_median_s"] == pytest.approx(0.0001)   # no onset_s: the start is the onset
     assert scores[("class", "spike")]["recall"] == 1.0 and scores[("class", "blip")]["recall"] == 0.0
     assert scores[("class", "spike")]["fp"] is None and scores[("class", "spike")]["precision"] is None
     # SNR bands: recall by the true snr, precision by the detections' measured snr.
@@ -602,3 +607,21 @@ def test_local_plugins_of_a_comparison_file_reach_every_variant(tmp_path: Path):
         # The standalone text names the plugin by an absolute path, so it loads from anywhere.
         assert tomllib.loads(variant.text)["plugins"]["local"] == [str(sub.resolve() / "../lab.py")]
         assert Path(tomllib.loads(variant.text)["plugins"]["local"][0]).is_absolute()
+
+
+def test_simulator_truth_is_put_on_the_recording_clock(tmp_path: Path):
+    # The simulator's truth holds electrode-current times; its recording lags them by the amplifier's delay
+    # and spreads each event over the amplifier's settling time (both in the truth file's metadata).
+    table = pa.table({"start_s": [0.010, 0.020], "end_s": [0.010004, 0.0205], "shape": ["blip", "spike"]})
+    simulated = tmp_path / "rec.truth.parquet"
+    pq.write_table(table.replace_schema_metadata({b"amplifier_delay_s": b"5e-06",
+                                                  b"amplifier_settle_s": b"4e-05"}), simulated)
+    truth = load_truth(simulated, recording="rec.bin")
+    start = truth.events.column("start_s").to_pylist()
+    end = truth.events.column("end_s").to_pylist()
+    assert start == pytest.approx([0.010005, 0.020005], abs=1e-12)
+    # The 4 us blip lasts the 40 us settling time; the 0.5 ms spike keeps its own (delayed) end.
+    assert end == pytest.approx([0.010045, 0.020505], abs=1e-12)
+    hand = tmp_path / "hand.csv"
+    hand.write_text("start_s,end_s\n0.010,0.010004\n")
+    assert load_truth(hand, ["rec.bin"]).events.column("start_s").to_pylist() == [0.010]

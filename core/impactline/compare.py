@@ -249,8 +249,11 @@ SCORE_COLUMNS: dict[str, Column] = {
     "recall": Column("float64", "", "tp / n_truth (by the truth's class or true snr)"),
     "f1": Column("float64", "", "2 precision recall / (precision + recall)"),
     "false_per_s": Column("float64", "1/s", "fp / duration_s"),
-    "onset_error_median_s": Column("float64", "s", "median of detected start_s - true start_s (matched)"),
+    "onset_error_median_s": Column("float64", "s", "median of detected onset_s - true start_s (matched; the "
+                                                    "detection's start_s where it has no onset_s)"),
     "onset_error_iqr_s": Column("float64", "s", "interquartile range of the onset errors"),
+    "start_error_median_s": Column("float64", "s", "median of detected start_s - true start_s (matched)"),
+    "start_error_iqr_s": Column("float64", "s", "interquartile range of the start errors"),
     "charge_error_median_C": Column("float64", "C", "median of detected charge_C - true charge_C (matched)"),
     "charge_error_rel_median": Column("float64", "", "median of (detected - true) / |true| charge"),
 }
@@ -1467,6 +1470,7 @@ def load_truth(path: str | Path, recordings: Sequence[str | Path] | None = None,
         i = int(bad[0])
         raise InputError(path, f"row {i}: start_s = {start[i]!r}, end_s = {end[i]!r}; expected finite times with "
                                "end_s > start_s", "fix or remove that row", key=f"row {i}")
+    start, end = _on_recording_clock(table, start, end)
     n = table.num_rows
     # The simulator's charge_C is the particle's full Faraday charge; signal_charge_C is what the event's
     # current carries (a blip oxidises part of the particle), which is what a detector can measure.
@@ -1491,6 +1495,24 @@ def load_truth(path: str | Path, recordings: Sequence[str | Path] | None = None,
     covered = list(dict.fromkeys(([str(Path(recording))] if recording is not None else []) + files))
     return GroundTruth(_truth_table(files, start, end, charge, klass, snr), covered,
                        {f: str(path) for f in covered})
+
+
+def _on_recording_clock(table: pa.Table, start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Simulator truth moved onto the recording's clock; other truth as it is.
+
+    The simulator's times are those of the electrode current. Its recording lags them by the amplifier's
+    group delay and spreads each event over the amplifier's settling time; both are in the truth file's
+    metadata (``amplifier_delay_s``, ``amplifier_settle_s``). Every time is delayed, and each event lasts at
+    least the settling time, so that a blip shorter than a sample can still overlap its detection. Hand-marked
+    events are taken to be on the recording's clock already.
+    """
+    meta = table.schema.metadata or {}
+    delay = float(meta.get(b"amplifier_delay_s", b"0") or 0.0)
+    settle = float(meta.get(b"amplifier_settle_s", b"0") or 0.0)
+    if delay == 0.0 and settle == 0.0:
+        return start, end
+    start = start + delay
+    return start, np.maximum(end + delay, start + settle)
 
 
 def _which_recording(given: str, keys: Sequence[str], path: Path, row: int) -> str:
@@ -1609,7 +1631,16 @@ def score_against_truth(truth: GroundTruth, events: pa.Table, sample_rate_hz: Ma
     t_class = np.asarray(truth.events.column("class").to_pylist(), dtype=object)
     t_snr = _floats(truth.events, "snr")
     d_snr = _floats(events, "snr") if "snr" in events.column_names else np.full(events.num_rows, np.nan)
-    onset = columns["onset_diff_s"]
+    start_err = columns["onset_diff_s"]
+    # The onset error uses the core's half-height onset (onset_s), the best estimate of when the current
+    # began; start_s is where the detector's signal left its baseline, early by up to a filter rise time.
+    onset_err = start_err
+    if "onset_s" in events.column_names and events.num_rows:
+        detected_onset = _floats(events, "onset_s")
+        true_start = _floats(truth.events, "start_s")
+        onset_err = np.full(outcome.size, np.nan)
+        both = matched & (det_rows >= 0) & (truth_rows >= 0)
+        onset_err[both] = detected_onset[det_rows[both]] - true_start[truth_rows[both]]
     charge_err = columns["charge_diff_C"]
     true_charge = columns["charge_C_a"]
     has_truth, has_det = columns["has_a"], columns["has_b"]
@@ -1626,7 +1657,8 @@ def score_against_truth(truth: GroundTruth, events: pa.Table, sample_rate_hz: Ma
             fp = int(np.sum(det_mask & has_det & ~matched))
             precision = _ratio(int(np.sum(det_mask & matched)), int(np.sum(det_mask & has_det)))
         sel = truth_mask & matched
-        onset_med, onset_iqr = _median_iqr(onset[sel])
+        onset_med, onset_iqr = _median_iqr(onset_err[sel])
+        start_med, start_iqr = _median_iqr(start_err[sel])
         charge_med, _ = _median_iqr(charge_err[sel])
         with np.errstate(divide="ignore", invalid="ignore"):
             rel_med, _ = _median_iqr(charge_err[sel] / np.abs(true_charge[sel]))
@@ -1636,6 +1668,7 @@ def score_against_truth(truth: GroundTruth, events: pa.Table, sample_rate_hz: Ma
                 "precision": p, "recall": recall, "f1": _f1(p, recall),
                 "false_per_s": _ratio(fp, duration) if fp is not None and math.isfinite(duration) else math.nan,
                 "onset_error_median_s": onset_med, "onset_error_iqr_s": onset_iqr,
+                "start_error_median_s": start_med, "start_error_iqr_s": start_iqr,
                 "charge_error_median_C": charge_med, "charge_error_rel_median": rel_med}
 
     everything = np.ones(outcome.size, dtype=bool)
@@ -2245,11 +2278,13 @@ def format_comparison(result: ComparisonResult) -> str:
             lines += _grid(["", *names], table_rows)
         errors = [[name, _q(by_key[(name, 'all', 'all')]["onset_error_median_s"], "s"),
                    _q(by_key[(name, 'all', 'all')]["onset_error_iqr_s"], "s"),
+                   _q(by_key[(name, 'all', 'all')]["start_error_median_s"], "s"),
                    _q(by_key[(name, 'all', 'all')]["charge_error_median_C"], "C"),
                    _n(by_key[(name, 'all', 'all')]["charge_error_rel_median"], "{:+.3f}")]
                   for name in names if (name, "all", "all") in by_key]
-        lines += ["", "errors against truth (detected - true, matched events)"]
-        lines += _grid(["variant", "onset median", "onset IQR", "charge median", "charge rel. median"], errors)
+        lines += ["", "errors against truth (detected - true, matched events; onset: onset_s, start: start_s)"]
+        lines += _grid(["variant", "onset median", "onset IQR", "start median", "charge median",
+                        "charge rel. median"], errors)
     for row in result.files.to_pylist():
         if row["status"] == "failed":
             lines.append(f"FAILED {row['variant']} on {row['file']}: {str(row['error']).splitlines()[0]}")

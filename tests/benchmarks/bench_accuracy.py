@@ -39,8 +39,9 @@ Truth and detections are compared on the recording's clock. The simulator's trut
 electrode current; the recording lags them by the amplifier's group delay at DC (``amplifier_delay_s`` in the
 truth metadata), so every true time is shifted by it before matching, and each true event is made at least
 as long as the amplifier's settling time (``amplifier_settle_s``), so a 4 us blip at 100 kHz or the 1 us rise
-of a step can overlap its detection at all. The runner already subtracts the DC group delay of a causal
-pipeline filter (a zero-phase one has none). Start error = detected ``start_s`` - (true ``start_s`` +
+of a step can overlap its detection at all (:func:`impactline.compare.load_truth` does both for any simulator
+truth file; here events are also made at least one sample long). The runner already subtracts the DC group
+delay of a causal pipeline filter (a zero-phase one has none). Start error = detected ``start_s`` - (true ``start_s`` +
 ``amplifier_delay_s``), in samples: both sides on the electrode's clock with every filter's DC delay removed.
 Onset error (the goal) = detected ``onset_s`` - true half-height instant: the instant the noise-free electrode
 current first reaches half of its first peak (:func:`electrode_half_height_s`; for a step, half its height),
@@ -162,23 +163,18 @@ class Recording:
     truth: GroundTruth = field(repr=False, default=None)
 
 
-def recorded_truth(truth: GroundTruth, delay_s: float, fs: float, settle_s: float = 0.0) -> GroundTruth:
-    """Truth on the recording's clock: every time plus the amplifier's group delay at DC, and each event lasting
-    at least until the amplifier has settled (and at least one sample).
+def recorded_truth(truth: GroundTruth, fs: float) -> GroundTruth:
+    """Truth events lasting at least one sample.
 
-    The simulator's times are those of the electrode current; the recording lags them by the amplifier delay
-    (``amplifier_delay_s`` in the truth metadata) and spreads each event over the amplifier's settling time
-    (``amplifier_settle_s``, to 0.1 %). Without this a 4 us blip at 100 kHz (shorter than a sample) or the
-    1 us rise of a step could not overlap its detection, and would count as missed.
+    ``load_truth`` already puts the simulator's times on the recording's clock (amplifier delay and settling
+    time, from the truth metadata); an event shorter than a sample (a 4 us blip at 100 kHz) is widened to one
+    so that it can overlap its detection on the sample grid.
     """
     events = truth.events
-    start = np.asarray(events.column("start_s").to_numpy(), dtype=float) + delay_s
-    end = np.asarray(events.column("end_s").to_numpy(), dtype=float) + delay_s
-    end = np.maximum(end, start + max(settle_s, 1.0 / fs))
-    for name, values in (("start_s", start), ("end_s", end)):
-        i = events.schema.get_field_index(name)
-        events = events.set_column(i, events.schema.field(i), pa.array(values))
-    return replace(truth, events=events)
+    start = np.asarray(events.column("start_s").to_numpy(), dtype=float)
+    end = np.maximum(np.asarray(events.column("end_s").to_numpy(), dtype=float), start + 1.0 / fs)
+    i = events.schema.get_field_index("end_s")
+    return replace(truth, events=events.set_column(i, events.schema.field(i), pa.array(end)))
 
 
 #: Grid step and span of the noise-free electrode current used to find each event's half-height instant, s.
@@ -258,9 +254,7 @@ def make_recordings(folder: Path, size: Size, seed: int = 0) -> list[Recording]:
 def write_recording(kind: str, spec: SimulationSpec, folder: Path) -> Recording:
     """Simulate ``spec`` into ``folder`` (``<name>.bin``) and load its truth on the recording's clock."""
     result = simulate(spec, folder / f"{spec.name}.bin", overwrite=True)
-    settle = float(pq.read_schema(result.truth_path).metadata[b"amplifier_settle_s"])
-    truth = recorded_truth(load_truth(result.truth_path, recording=str(result.data_path)),
-                           result.amplifier_delay_s, spec.sample_rate_hz, settle)
+    truth = recorded_truth(load_truth(result.truth_path, recording=str(result.data_path)), spec.sample_rate_hz)
     half = electrode_half_height_s(spec) + amplifier_half_height_delay_s(spec)
     truth = replace(truth, events=truth.events.append_column("half_height_s", pa.array(half)))
     return Recording(kind, spec.sample_rate_hz, result.data_path, result.truth_path, result.duration_s,
