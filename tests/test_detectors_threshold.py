@@ -297,7 +297,7 @@ def test_detectors_sharing_a_memo_find_exactly_what_each_finds_alone(monkeypatch
         shared[i] += d.finish(states[i])
     assert [signature(events) for events in shared] == alone
     assert all(len(events) > 10 for events in alone)
-    # Levels: one book per window (100 ms, 30 ms); noise: one per window and polarity, each block's noise
-    # computed once per book (30 blocks of 100 ms, 100 of 30 ms), not once per detector.
-    assert len(memo) == 5
+    # Levels and residuals: one book each per window (100 ms, 30 ms); noise: one per window and polarity,
+    # each block's noise computed once per book (30 blocks of 100 ms, 100 of 30 ms), not once per detector.
+    assert len(memo) == 7
     assert len(noise_calls) == 30 + 30 + 100

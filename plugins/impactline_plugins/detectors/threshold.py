@@ -123,6 +123,7 @@ class _State:
     ready: list[Event] = field(default_factory=list)
     shared_levels: _SharedBlocks | None = None   # block -> (level, centre), shared with other detectors
     shared_sigmas: _SharedBlocks | None = None   # block -> noise sigma, shared likewise
+    shared_residuals: _SharedBlocks | None = None   # block -> (baseline, samples - baseline) arrays, A
 
 
 class ThresholdDetector(Detector):
@@ -236,14 +237,19 @@ class ThresholdDetector(Detector):
     def start_shared(self, sample_rate_hz: float, memo: dict) -> _State:
         """Initial state of a stream other detectors also receive: block levels and noise are computed once.
 
-        A block's baseline level and centre depend only on the samples and ``baseline_window``; its noise
-        also on ``polarity`` (which side is quiet). Detectors of this class with the same settings, whatever
-        their ``k_sigma``, ``release_sigma`` or durations, read them from ``memo`` instead of partitioning
-        the block again; the events are the same, bit for bit.
+        A block's baseline level and centre, and so its baseline line and the samples minus it, depend only
+        on the samples and ``baseline_window``; its noise also on ``polarity`` (which side is quiet).
+        Detectors of this class with the same settings, whatever their ``k_sigma``, ``release_sigma`` or
+        durations, read them from ``memo`` instead of computing them again; the events are the same, bit
+        for bit. A block's entries stay until every sharer has read them, so sharers should be fed chunk by
+        chunk together, as a comparison does (one far ahead of the others holds a chunk's blocks per chunk
+        of lead).
         """
         st = self.start(sample_rate_hz)
         st.shared_levels = memo.setdefault((type(self), "levels", st.block), _SharedBlocks())
         st.shared_levels.join(id(st))
+        st.shared_residuals = memo.setdefault((type(self), "residuals", st.block), _SharedBlocks())
+        st.shared_residuals.join(id(st))
         if self.noise_rms is None:
             st.shared_sigmas = memo.setdefault((type(self), "sigmas", st.block, self.polarity), _SharedBlocks())
             st.shared_sigmas.join(id(st))
@@ -375,9 +381,17 @@ class ThresholdDetector(Detector):
 
     def _classify(self, st: _State, j: int, a: int, b: int, sigma: float | None) -> None:
         """Subtract the baseline from samples ``[a, b)`` of block ``j``, add them to the scan region, scan."""
-        x = st.buf.view(a, b)
-        baseline = self._baseline(st, j, np.arange(a - st.origin, b - st.origin, dtype=np.float64))
-        d = x - baseline
+        book = st.shared_residuals if sigma is None else None   # the record's tail is classified once
+        if book is not None and j in book.values:
+            baseline, d = book.values[j]
+        else:
+            x = st.buf.view(a, b)
+            baseline = self._baseline(st, j, np.arange(a - st.origin, b - st.origin, dtype=np.float64))
+            d = x - baseline
+            if book is not None:
+                book.values[j] = (baseline, d)
+        if book is not None:
+            book.done(id(st), j + 1)
         if sigma is None:
             shared = st.shared_sigmas
             if self.noise_rms is not None:
