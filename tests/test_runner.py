@@ -116,6 +116,22 @@ def test_file_noise_meter_is_the_same_whatever_the_chunks(chunks):
     assert 0.95 < whole.result() < 2.05
 
 
+def test_reading_ahead_in_a_second_thread_changes_nothing(tmp_path):
+    x, _ = _recording()
+    path = _write_npy(tmp_path / "a.npy", x)
+    pipeline = parse_pipeline(_with_chunk(PIPELINE, 4096))
+    plain = process_recording(pipeline, path)
+    ahead = process_recording(pipeline, path, read_ahead=True)
+    assert ahead.events.equals(plain.events)
+    assert {k: v for k, v in ahead.row.items() if k != "seconds"} == \
+        {k: v for k, v in plain.row.items() if k != "seconds"}
+    # An error met by the reading thread is raised to the caller, with the sample index.
+    x[300_001] = np.nan
+    bad = _write_npy(tmp_path / "b.npy", x)
+    with pytest.raises(Exception, match="300001"):
+        process_recording(pipeline, bad, read_ahead=True)
+
+
 def test_events_match_what_was_put_in(tmp_path):
     x, starts = _recording()
     events = process_recording(parse_pipeline(PIPELINE), _write_npy(tmp_path / "a.npy", x)).events
