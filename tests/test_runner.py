@@ -132,6 +132,33 @@ def test_reading_ahead_in_a_second_thread_changes_nothing(tmp_path):
         process_recording(pipeline, bad, read_ahead=True)
 
 
+def test_read_ahead_thread_stops_when_the_consumer_stops():
+    # The consumer leaves early (an error in the detector, say) while the reader is ahead with a full queue,
+    # here holding the last chunk and about to hand over the end mark: it must give up rather than wait for
+    # ever, and a long stream is not read to its end.
+    import threading
+
+    from impactline.runner import _read_ahead
+
+    def leave_early(n_chunks, produced):
+        def chunks():
+            for i in range(n_chunks):
+                produced.append(i)
+                yield np.full(4, float(i))
+
+        ahead = _read_ahead(chunks(), lambda c: c * 2.0, depth=1)
+        assert next(ahead)[0] == 0.0
+        ahead.close()   # runs the generator's finally: stop the thread and join it
+
+    for n_chunks in (2, 1000):
+        produced: list[int] = []
+        closing = threading.Thread(target=leave_early, args=(n_chunks, produced), daemon=True)
+        closing.start()
+        closing.join(timeout=10)
+        assert not closing.is_alive(), "the reading thread did not stop"
+        assert len(produced) <= 4
+
+
 def test_events_match_what_was_put_in(tmp_path):
     x, starts = _recording()
     events = process_recording(parse_pipeline(PIPELINE), _write_npy(tmp_path / "a.npy", x)).events

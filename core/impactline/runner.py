@@ -351,21 +351,24 @@ def _read_ahead(chunks: Iterable[np.ndarray], work: Callable[[np.ndarray], np.nd
     results: queue.Queue = queue.Queue(maxsize=depth)
     stop = threading.Event()
 
+    def hand_over(item) -> bool:
+        # Never block for good: once the consumer has stopped (it raised, or was closed early), give up.
+        while not stop.is_set():
+            try:
+                results.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
     def produce() -> None:
         try:
             for chunk in chunks:
-                item = work(chunk)
-                while not stop.is_set():
-                    try:
-                        results.put(item, timeout=0.1)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
+                if not hand_over(work(chunk)):
                     return
-            results.put(done)
+            hand_over(done)
         except BaseException as exc:  # handed to the consumer, which raises it
-            results.put(exc)
+            hand_over(exc)
 
     thread = threading.Thread(target=produce, name="impactline-read-ahead", daemon=True)
     thread.start()
