@@ -117,15 +117,14 @@ from .registry import PluginRegistry, default_registry
 from .runner import (
     EventBranch,
     NoiseMeter,
-    chain_info,
+    chain_figures,
     describe_error,
     events_schema,
     expand_inputs,
     package_versions,
-    pulse_timing,
     read_checked,
 )
-from .stages import Column, FilterInfo
+from .stages import Column
 from .units import format_quantity
 
 __all__ = [
@@ -406,8 +405,6 @@ class Comparison:
         _check_shared_reader(self.variants)
         self._tree = _filter_tree(self.variants)
         self._schemas = [events_schema(v.pipeline) for v in self.variants]
-        self._chains: dict[tuple[int, float], FilterInfo] = {}
-        self._pulse_timings: dict[tuple[int, float], Any] = {}   # runner's onset tables, by variant and rate
 
     @property
     def names(self) -> list[str]:
@@ -844,17 +841,12 @@ class _FanOut:
                 continue
             try:
                 pipeline = variant.pipeline
-                chain = comparison._chains.get((index, fs))
-                if chain is None:
-                    chain = comparison._chains[(index, fs)] = chain_info(pipeline.build_filters(), fs)
-                # The branch gets samples already filtered by the shared tree, not the filters: the onset's
-                # pulse timing (made from the variant's filters in a plain run) is made here, once per rate.
-                if (index, fs) not in comparison._pulse_timings:
-                    comparison._pulse_timings[(index, fs)] = pulse_timing(pipeline.build_filters(), fs)
+                # The branch gets samples already filtered by the shared tree: the bandwidth and onset timing
+                # are those of the variant's own filters.
+                chain, timing = chain_figures(pipeline, fs)
                 self.branches[index] = EventBranch(
                     [], pipeline.build_detector(), pipeline.build_measures(), fs, path, comparison._schemas[index],
-                    pipeline.material(), chain=chain, timing=comparison._pulse_timings[(index, fs)],
-                    memo=memos.get(index))
+                    pipeline.material(), chain=chain, timing=timing, memo=memos.get(index))
             except Exception as exc:
                 self.errors[index] = describe_error(exc)
         self._share_noise(self.root)

@@ -55,8 +55,8 @@ from .pipeline import Pipeline, parse_pipeline
 from .robust import MAD_TO_SIGMA
 from .stages import Column, Event, EventWindow, FilterInfo
 
-__all__ = ["EventBranch", "NoiseMeter", "chain_info", "describe_error", "read_checked", "FileResult", "RunResult",
-           "process_recording", "run", "expand_inputs", "events_schema"]
+__all__ = ["EventBranch", "NoiseMeter", "chain_info", "chain_figures", "describe_error", "read_checked", "FileResult",
+           "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
 
 NOISE_BLOCK_SAMPLES = 1 << 16
 #: Measured events are turned from row dicts into an Arrow table every this many rows: a dict per event
@@ -195,13 +195,13 @@ class EventBranch:
     material : Material or None
         Sizing material (adds ``diameter_m``).
     chain : FilterInfo, optional
-        Bandwidth of the whole filter chain feeding the detector (default: computed from ``filters``).
+        Bandwidth of the whole filter chain feeding the detector (default: computed from ``filters``, and
+        ``timing`` with it).
     noise : NoiseMeter, optional
         File-level noise meter (default: the branch's own, fed with its filtered samples).
     timing : PulseTiming, optional
-        Onset timing of pulses through the filter chain feeding the detector (default: made from
-        ``filters`` by :func:`pulse_timing`; a comparison, whose branches get samples already filtered,
-        passes the variant's own).
+        Onset timing of pulses through that chain, given with ``chain`` (None: no low-pass filter); see
+        :func:`chain_figures`, which a comparison uses for branches fed samples already filtered.
     memo : dict, optional
         Shared by the detectors of branches fed the very same samples (see
         :meth:`impactline.stages.Detector.start_shared`); None for a branch on its own.
@@ -222,7 +222,9 @@ class EventBranch:
             self.detector_state = detector.start(fs) if memo is None else detector.start_shared(fs, memo)
         except ValueError as exc:  # e.g. a cutoff above this file's Nyquist frequency
             raise InputError(path, str(exc), "lower the cutoff or check the file's sample rate") from None
-        self.chain = chain if chain is not None else chain_info(self.filters, fs)
+        if chain is None:
+            chain, timing = chain_info(self.filters, fs), pulse_timing(self.filters, fs)
+        self.chain = chain
         contexts = [m.context_samples(fs) for m in self.measures]
         self.pre = max([c[0] for c in contexts], default=0)
         self.post = max([c[1] for c in contexts], default=0)
@@ -234,8 +236,6 @@ class EventBranch:
         self.rows: list[dict[str, Any]] = []
         self.tables: list[pa.Table] = []
         self.n_measured = 0
-        if timing is None:
-            timing = pulse_timing(self.filters, fs)
         self.state = {"last_start": None, "last_index": -1, "pulse_timing": timing}
         self.received = 0
         self.filtered = 0
@@ -252,15 +252,11 @@ class EventBranch:
         self.noise.push(samples)   # the file's noise needs only the filtered samples: done on the filter side
         return samples
 
-    def push_filtered(self, samples: np.ndarray) -> None:
-        """Feed filtered samples (from :meth:`filter_chunk`, in order) to the detector and measures."""
-        self._push_filtered(samples)
-
     def finish(self) -> pa.Table:
         """Drain filters and detector, measure the last events, return the events table."""
         tail = _flush_filters(self.filters, self.filter_states)
         self.noise.push(tail)
-        self._push_filtered(tail)
+        self.push_filtered(tail)
         if self.filtered != self.received:
             raise ImpactlineError(f"{self.path}: the filters returned {self.filtered} samples for {self.received} "
                                   "read; a filter broke the stream contract")
@@ -284,7 +280,8 @@ class EventBranch:
         self.tables.append(table_from_rows(self.rows, self.schema))
         self.rows = []
 
-    def _push_filtered(self, samples: np.ndarray) -> None:
+    def push_filtered(self, samples: np.ndarray) -> None:
+        """Feed filtered samples (from :meth:`filter_chunk`, in order) to the detector and measures."""
         if samples.size == 0:
             return
         first = self.filtered
@@ -418,8 +415,9 @@ def process_recording(pipeline: Pipeline, path: str | Path, *,
     recording = reader.open(path)
     fs = float(recording.sample_rate_hz)
     material = pipeline.material()
+    chain, timing = chain_figures(pipeline, fs)
     branch = EventBranch(pipeline.build_filters(), pipeline.build_detector(), pipeline.build_measures(), fs, path,
-                         events_schema(pipeline), material)
+                         events_schema(pipeline), material, chain=chain, timing=timing)
     chunks = read_checked(recording, pipeline.chunk_samples, path, progress)
     if read_ahead:
         for filtered in _read_ahead(chunks, branch.filter_chunk):
@@ -521,6 +519,21 @@ def predicted_collision_rate(settings: dict[str, Any] | None, median_diameter_m:
     predicted = float(collision_frequency_disc(diffusion, settings["concentration"], settings["electrode_radius"]))
     return {"diffusion_coefficient_m2_per_s": diffusion, "predicted_rate_per_s": predicted,
             "rate_ratio": measured_rate_per_s / predicted}
+
+
+#: Figures of each pipeline's filter chain by (pipeline hash, sample rate): the same for every file of a batch,
+#: and tabulating the onset timing takes tens of milliseconds, much next to a short file.
+_CHAIN_FIGURES: dict[tuple[str, float], tuple[FilterInfo, Any]] = {}
+
+
+def chain_figures(pipeline: Pipeline, fs: float) -> tuple[FilterInfo, Any]:
+    """Bandwidth (:func:`chain_info`) and onset timing (:func:`pulse_timing`) of ``pipeline``'s filters at
+    ``fs`` (Hz), computed once per pipeline and sample rate in a process."""
+    key = (pipeline.hash, float(fs))
+    if key not in _CHAIN_FIGURES:
+        filters = pipeline.build_filters()
+        _CHAIN_FIGURES[key] = (chain_info(filters, fs), pulse_timing(filters, fs))
+    return _CHAIN_FIGURES[key]
 
 
 def pulse_timing(filters: Sequence, fs: float):

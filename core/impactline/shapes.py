@@ -154,6 +154,14 @@ def shape_matrix(events: pa.Table, column: str = SHAPE_COLUMN) -> tuple[np.ndarr
     return out, valid
 
 
+def _column_values(events: pa.Table, name: str) -> np.ndarray:
+    """A scalar column as float64, nulls as NaN."""
+    raw = events.column(name).to_numpy(zero_copy_only=False)
+    if raw.dtype != object:
+        return np.asarray(raw, dtype=np.float64)
+    return np.array([np.nan if v is None else float(v) for v in raw])
+
+
 def feature_matrix(events: pa.Table, names: Sequence[str] = (), medians: Mapping[str, float] | None = None
                    ) -> tuple[np.ndarray, list[str], dict[str, float]]:
     """Scalar features, transformed and with missing values filled.
@@ -194,9 +202,7 @@ def feature_matrix(events: pa.Table, names: Sequence[str] = (), medians: Mapping
         candidates = [c for c in DEFAULT_FEATURES if c in events.column_names]
     columns, used, fills = [], [], {}
     for name in candidates:
-        raw = events.column(name).to_numpy(zero_copy_only=False)
-        values = np.asarray(raw, dtype=np.float64) if raw.dtype != object else np.array(
-            [np.nan if v is None else float(v) for v in raw])
+        values = _column_values(events, name)
         if name.endswith(_LOG_SUFFIXES):
             with np.errstate(divide="ignore", invalid="ignore"):
                 values = np.log10(np.abs(values))
@@ -249,9 +255,7 @@ def screen_features(events: pa.Table, names: Sequence[str], rows: np.ndarray | N
     """
     kept, dropped = [], {}
     for name in names:
-        raw = events.column(name).to_numpy(zero_copy_only=False)
-        values = np.asarray(raw, dtype=np.float64) if raw.dtype != object else np.array(
-            [np.nan if v is None else float(v) for v in raw])
+        values = _column_values(events, name)
         if rows is not None:
             values = values[rows]
         finite = np.isfinite(values)

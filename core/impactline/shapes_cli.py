@@ -204,6 +204,10 @@ def cluster_runs(runs: list[str | Path], method: str = "kmeans", params: dict[st
     return {"events": events, "stage": stage, "prototypes": proto, "selection": selection, "written": written}
 
 
+#: Options of the gmm method's combination of mixture components.
+_COMBINE_OPTIONS = ("combine", "elbow", "clusters", "count_rule")
+
+
 def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
     params: dict[str, Any] = {"seed": args.seed, "embedding": args.embedding, "components": args.components,
                               "transform": args.transform}
@@ -219,12 +223,12 @@ def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
         params["max_k"] = args.max_k
     if args.min_cluster_size is not None:
         params["min_cluster_size"] = args.min_cluster_size
-    for key in ("combine", "elbow", "clusters", "count_rule"):
+    for key in _COMBINE_OPTIONS:
         if getattr(args, key, None) is not None:
             params[key] = getattr(args, key)
     for key in list(params):
         if key not in declared:
-            if key in ("k", "max_k", "min_cluster_size", "combine", "elbow", "clusters", "count_rule"):
+            if key in ("k", "max_k", "min_cluster_size", *_COMBINE_OPTIONS):
                 raise ImpactlineError(f"--{key.replace('_', '-')} does not apply to --method {args.method}")
             params.pop(key)
     combine = params.get("combine", declared["combine"].default if "combine" in declared else None)

@@ -188,29 +188,21 @@ def electrode_half_height_s(spec: SimulationSpec) -> np.ndarray:
     The instant the noise-free current first reaches half of its first peak (a step: half its height), the 50 %
     reference level instant of IEEE Std 181-2011 (from memory): the same definition as the pipeline's
     ``onset_s`` and the place a change-point estimate puts a step. The current is rebuilt from the simulator's
-    event components (private catalogue: the truth table holds the onset but not the rise time constants):
-    pulse ``q (exp(-s/td) - exp(-s/tr)) / (td - tr)``, rectangle ``q / w`` on ``[0, w)``, step
-    ``q (1 - exp(-s/a))``, evaluated every 10 ns over 400 us from the onset.
+    event components with the simulator's own formulas (private catalogue: the truth table holds the onset but
+    not the rise time constants), as its mean over 10 ns cells, over 400 us from the onset.
     """
-    from impactline.simulate import _prepare  # noqa: PLC0415 - the catalogue is not public API
+    from impactline.simulate import _component_values, _prepare  # noqa: PLC0415 - not public API
 
     _, catalogue, _ = _prepare(spec)
     c = catalogue.components
     onsets = np.array([row["start_s"] for row in catalogue.rows], dtype=float)
-    s = np.arange(0.0, _HALF_SPAN_S, _HALF_GRID_S)
+    cells = int(round(_HALF_SPAN_S / _HALF_GRID_S))
     out = np.full(len(onsets), np.nan)
     for event, onset in enumerate(onsets):
-        current = np.zeros_like(s)
+        current = np.zeros(cells)
         for i in np.flatnonzero(c.event == event):
-            u = s - (c.t0[i] - onset)
-            on = u >= 0
-            q, a, b = float(c.q[i]), float(c.a[i]), float(c.b[i])
-            if c.kind[i] == 0:      # rise-and-decay pulse (time constants a, b)
-                current[on] += q * (np.exp(-u[on] / b) - np.exp(-u[on] / a)) / (b - a)
-            elif c.kind[i] == 1:    # rectangle of width a
-                current[on & (u < a)] += q / a
-            else:                   # step rising with time constant a
-                current[on] += q * -np.expm1(-u[on] / a)
+            current += _component_values(int(c.kind[i]), float(c.q[i]), float(c.a[i]), float(c.b[i]),
+                                         float(c.t0[i] - onset), 0, cells, 1.0 / _HALF_GRID_S)
         rising = np.sign(current[np.argmax(np.abs(current))]) * current
         running = np.maximum.accumulate(rising)
         fallen = np.flatnonzero(running - rising > 1e-9 * running.max())

@@ -21,6 +21,7 @@ Every estimate depends only on absolute sample positions, so chunking changes no
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -74,6 +75,18 @@ class _SharedBlocks:
         while self.low < floor:
             self.values.pop(self.low, None)
             self.low += 1
+
+
+def _per_block(book: _SharedBlocks | None, consumer: int, j: int, compute: Callable[[], Any]) -> Any:
+    """``compute()`` for block ``j``, or the value another detector sharing ``book`` stored for it."""
+    if book is None:
+        return compute()
+    if j in book.values:
+        value = book.values[j]
+    else:
+        value = book.values[j] = compute()
+    book.done(consumer, j + 1)
+    return value
 
 
 @dataclass
@@ -298,11 +311,10 @@ class ThresholdDetector(Detector):
 
     # ------------------------------------------------------------------ baseline and noise
     def _block_level(self, st: _State, j: int, a: int, b: int) -> None:
-        shared = st.shared_levels
-        if shared is not None and j in shared.values:
-            st.levels[j], st.centres[j] = shared.values[j]
-            shared.done(id(st), j + 1)
-            return
+        st.levels[j], st.centres[j] = _per_block(st.shared_levels, id(st), j, lambda: self._level(st, a, b))
+
+    def _level(self, st: _State, a: int, b: int) -> tuple[float, float]:
+        """Baseline level (A) of samples ``[a, b)`` and the block centre (samples from the origin)."""
         xb = st.buf.view(a, b)
         n = xb.size
         half = n // 2
@@ -320,11 +332,7 @@ class ThresholdDetector(Detector):
             below = int(np.count_nonzero(ordered[~inside] < first))
             lower, upper = _ranked_pair(ordered, half, below + kept // 2)
             level = upper if kept % 2 else 0.5 * (lower + upper)
-        st.levels[j] = level
-        st.centres[j] = (a - st.origin) + (b - a - 1) / 2.0
-        if shared is not None:
-            shared.values[j] = (level, st.centres[j])
-            shared.done(id(st), j + 1)
+        return level, (a - st.origin) + (b - a - 1) / 2.0
 
     def _baseline(self, st: _State, j: int, pos: np.ndarray) -> np.ndarray:
         """Baseline (A) at positions ``pos`` (samples from origin, ascending) inside block ``j``."""
@@ -381,29 +389,17 @@ class ThresholdDetector(Detector):
 
     def _classify(self, st: _State, j: int, a: int, b: int, sigma: float | None) -> None:
         """Subtract the baseline from samples ``[a, b)`` of block ``j``, add them to the scan region, scan."""
-        book = st.shared_residuals if sigma is None else None   # the record's tail is classified once
-        if book is not None and j in book.values:
-            baseline, d = book.values[j]
-        else:
-            x = st.buf.view(a, b)
+        def residuals() -> tuple[np.ndarray, np.ndarray]:
             baseline = self._baseline(st, j, np.arange(a - st.origin, b - st.origin, dtype=np.float64))
-            d = x - baseline
-            if book is not None:
-                book.values[j] = (baseline, d)
-        if book is not None:
-            book.done(id(st), j + 1)
+            return baseline, st.buf.view(a, b) - baseline
+
+        book = st.shared_residuals if sigma is None else None   # the record's tail is classified once
+        baseline, d = _per_block(book, id(st), j, residuals)
         if sigma is None:
-            shared = st.shared_sigmas
             if self.noise_rms is not None:
                 sigma = self.noise_rms
-            elif shared is not None and j in shared.values:
-                sigma = shared.values[j]
             else:
-                sigma = self._noise(d)
-                if shared is not None:
-                    shared.values[j] = sigma
-            if shared is not None:
-                shared.done(id(st), j + 1)
+                sigma = _per_block(st.shared_sigmas, id(st), j, lambda: self._noise(d))
             st.sigmas[j] = sigma
         st.region_d = np.concatenate((st.region_d, d))
         st.region_b = np.concatenate((st.region_b, baseline))
