@@ -625,3 +625,7 @@ def test_simulator_truth_is_put_on_the_recording_clock(tmp_path: Path):
     hand = tmp_path / "hand.csv"
     hand.write_text("start_s,end_s\n0.010,0.010004\n")
     assert load_truth(hand, ["rec.bin"]).events.column("start_s").to_pylist() == [0.010]
+    broken = tmp_path / "broken.truth.parquet"
+    pq.write_table(table.replace_schema_metadata({b"amplifier_delay_s": b"soon"}), broken)
+    with pytest.raises(InputError, match=r"broken\.truth\.parquet.*amplifier_delay_s.*'soon'"):
+        load_truth(broken, recording="rec.bin")

@@ -1462,7 +1462,7 @@ def load_truth(path: str | Path, recordings: Sequence[str | Path] | None = None,
         i = int(bad[0])
         raise InputError(path, f"row {i}: start_s = {start[i]!r}, end_s = {end[i]!r}; expected finite times with "
                                "end_s > start_s", "fix or remove that row", key=f"row {i}")
-    start, end = _on_recording_clock(table, start, end)
+    start, end = _on_recording_clock(path, table, start, end)
     n = table.num_rows
     # The simulator's charge_C is the particle's full Faraday charge; signal_charge_C is what the event's
     # current carries (a blip oxidises part of the particle), which is what a detector can measure.
@@ -1489,7 +1489,8 @@ def load_truth(path: str | Path, recordings: Sequence[str | Path] | None = None,
                        {f: str(path) for f in covered})
 
 
-def _on_recording_clock(table: pa.Table, start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _on_recording_clock(path: Path, table: pa.Table, start: np.ndarray,
+                        end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Simulator truth moved onto the recording's clock; other truth as it is.
 
     The simulator's times are those of the electrode current. Its recording lags them by the amplifier's
@@ -1499,8 +1500,19 @@ def _on_recording_clock(table: pa.Table, start: np.ndarray, end: np.ndarray) -> 
     events are taken to be on the recording's clock already.
     """
     meta = table.schema.metadata or {}
-    delay = float(meta.get(b"amplifier_delay_s", b"0") or 0.0)
-    settle = float(meta.get(b"amplifier_settle_s", b"0") or 0.0)
+    times = []
+    for key in (b"amplifier_delay_s", b"amplifier_settle_s"):
+        text = meta.get(key, b"0")
+        try:
+            value = float(text)
+        except ValueError:
+            value = math.nan
+        if not (math.isfinite(value) and value >= 0.0):
+            raise InputError(path, f"metadata {key.decode()} = {text.decode(errors='replace')!r}; expected a time "
+                                   "in s, 0 or more", "rewrite the truth file with impactline simulate, or drop that "
+                                                      "metadata key", key=key.decode())
+        times.append(value)
+    delay, settle = times
     if delay == 0.0 and settle == 0.0:
         return start, end
     start = start + delay
