@@ -352,19 +352,24 @@ def pulse_shape_figures(y: np.ndarray, peak_at: int) -> tuple[float, float, floa
     if not top > 0:
         return None
     half, quarter = 0.5 * top, 0.25 * top
-    first = int(np.flatnonzero(y[:peak_at + 1] >= half)[0])
+    # argmax of a boolean array is its first True (or 0 when there is none, checked where it can happen):
+    # it runs once per event, where index arrays from flatnonzero cost more than the search.
+    first = int(np.argmax(y[:peak_at + 1] >= half))
     rise = _crossing_up(y, half, first) if first > 0 else 0.0
-    after = np.flatnonzero(y[peak_at:] < half)
-    if not after.size:
+    below = y[peak_at:] < half
+    j = int(np.argmax(below))
+    if not below[j]:
         return rise, math.inf, math.nan
-    j = peak_at + int(after[0])
+    j += peak_at
     fall = _crossing_down(y, half, j)
-    low_before = np.flatnonzero(y[:first] < quarter)
-    low_after = np.flatnonzero(y[j:] < quarter)
-    if not low_before.size or not low_after.size:
+    low_before = y[:first] < quarter
+    last_low = first - 1 - int(np.argmax(low_before[::-1])) if first else -1
+    low_after = y[j:] < quarter
+    k = int(np.argmax(low_after))
+    if last_low < 0 or not low_before[last_low] or not low_after[k]:
         return rise, fall - rise, math.nan
-    k = j + int(low_after[0])
-    rise_quarter = _crossing_up(y, quarter, int(low_before[-1]) + 1)
+    k += j
+    rise_quarter = _crossing_up(y, quarter, last_low + 1)
     fall_quarter = _crossing_down(y, quarter, k)
     return rise, fall - rise, ((fall_quarter - fall) - (rise - rise_quarter)) / (fall - rise)
 
@@ -430,9 +435,12 @@ def leading_edge(y: np.ndarray, noise_rms: float, start: int = 0, drop_sigmas: f
     rising = y[start:]
     if not rising.size:
         return None
-    running_max = np.maximum.accumulate(rising)
-    fallen = np.flatnonzero(running_max - rising >= drop_sigmas * noise_rms) if noise_rms > 0 else []
-    peak_at = int(np.argmax(rising[:fallen[0]])) if len(fallen) else int(np.argmax(rising))
+    peak_at = int(np.argmax(rising))
+    if noise_rms > 0:
+        fallen = np.maximum.accumulate(rising) - rising >= drop_sigmas * noise_rms
+        first_fall = int(np.argmax(fallen))   # the first True, when there is one
+        if fallen[first_fall]:
+            peak_at = int(np.argmax(rising[:first_fall]))
     half = 0.5 * float(rising[peak_at])
     # Walk back over context samples still above half, keeping one below it for the interpolation.
     lo, floor = start, max(0, start - lookback)
