@@ -42,6 +42,7 @@ from impactline_plugins.classifiers.cluster import (
     combine_components,
     elbow,
     merge_posterior,
+    minor_clusters,
     relabel_by_size,
     step_silhouettes,
 )
@@ -633,6 +634,56 @@ def test_choice_by_silhouette():
         choose_combination(combination, silhouette=np.zeros(3))
 
 
+def test_minor_clusters_are_those_under_the_share():
+    labels = np.repeat([0, 1, 2, 3], [60, 30, 8, 2])
+    assert minor_clusters(labels, 5, 0.05).tolist() == [False, False, False, True, True]  # 4 is empty
+    assert minor_clusters(labels, 4, 0.0).tolist() == [False] * 4
+    assert minor_clusters(labels, 4, 0.08).tolist() == [False, False, False, True]  # 8 of 100 is not under 8 %
+    # The largest cluster always counts, whatever the share asked for.
+    assert minor_clusters(np.repeat([0, 1, 2], [34, 33, 33]), 3, 0.5).tolist() == [False, True, True]
+
+
+def _three_classes_and_a_handful():
+    """Three classes of 300 events in 2-D and 9 events far from them (a group too small to be a kind)."""
+    from sklearn.datasets import make_blobs
+
+    X, y = make_blobs(n_samples=[300, 300, 300, 9], centers=[[0.0, 0.0], [10.0, 0.0], [0.0, 10.0], [9.0, 9.0]],
+                      cluster_std=0.8, random_state=4)
+    table = pa.table({"file": ["f"] * len(X), "event_id": np.arange(len(X)), "a": X[:, 0], "b": X[:, 1]})
+    return table, y
+
+
+def test_gmm_dissolves_clusters_under_min_share():
+    table, y = _three_classes_and_a_handful()
+    stage = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6)
+    out = stage.fit_predict(table)  # default: 2 % (18 events) at least; the 9 are left unassigned
+    assert out["cluster_count"][0] == 3
+    assert np.all(out["cluster"][y == 3] == -1) and np.all(np.isnan(out["cluster_probability"][y == 3]))
+    assert np.all(out["cluster"][y < 3] >= 0) and adjusted_rand_score(y[y < 3], out["cluster"][y < 3]) == 1.0
+    row = next(r for r in stage.selection_.to_pylist() if r["criterion"] == "min_share")
+    assert row["k"] == 3 and row["decision"] == "unassign" and row["score"] == pytest.approx(9 / 909)
+    assert row["groups"] and row["chosen"]
+
+    kept = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6, min_share=0).fit_predict(table)
+    assert kept["cluster_count"][0] == 4 and adjusted_rand_score(y, kept["cluster"]) == 1.0
+
+    moved = GaussianMixtureShapes(embedding="features", features=["a", "b"], max_k=6, minor="reassign")
+    out = moved.fit_predict(table)
+    assert out["cluster_count"][0] == 3 and np.all(out["cluster"] >= 0)
+    assert adjusted_rand_score(y[y < 3], out["cluster"][y < 3]) == 1.0
+    # The posterior renormalized over the kept clusters: a probability, and the most probable of them.
+    assert np.all((out["cluster_probability"] > 0) & (out["cluster_probability"] <= 1))
+    # Each of the 9 goes where the mixture puts most of its mass once its own component is set aside.
+    X = embed(table, "features", features=["a", "b"]).X[y == 3]
+    far = moved.mixture_.predict_proba(X)[:, moved.component_order_]
+    own = np.bincount(out["cluster_component"][y == 3]).argmax()
+    far[:, own] = 0.0
+    cluster_of = {c: np.bincount(out["cluster"][(out["cluster_component"] == c) & (y < 3)]).argmax()
+                  for c in range(far.shape[1]) if c != own}
+    assert out["cluster"][y == 3].tolist() == [cluster_of[c] for c in np.argmax(far, axis=1)]
+    assert next(r for r in moved.selection_.to_pylist() if r["criterion"] == "min_share")["decision"] == "reassign"
+
+
 def test_density_leaves_outliers_unassigned_also_beyond_the_fitted_sample():
     from sklearn.datasets import make_blobs
 
@@ -813,7 +864,9 @@ def test_cluster_command_combines_components_and_records_the_entropy(tmp_path, c
     assert all(a["score"] >= b["score"] - 1e-9 for a, b in zip(entropy, entropy[1:], strict=False))
     clusters = pq.read_table(tmp_path / "run" / "clusters.parquet")
     chosen = next(r["k"] for r in entropy if r["chosen"])
-    assert clusters.column("cluster_count")[0].as_py() == chosen
+    minor = next(r for r in selection if r["criterion"] == "min_share")
+    assert clusters.column("cluster_count")[0].as_py() == minor["k"] <= chosen
+    assert f"; {minor['k']} clusters counted" in report
     assert "cluster_component" in clusters.column_names
     assert _cli(argv) == 0  # same seed, same clusters
     assert pq.read_table(tmp_path / "run" / "clusters.parquet").select(["cluster", "cluster_probability"]).equals(
@@ -833,6 +886,16 @@ def test_cluster_command_combines_components_and_records_the_entropy(tmp_path, c
     assert next(r for r in entropy if r["chosen"])["silhouette"] == max(r["silhouette"] for r in scored)
     with pytest.raises(ImpactlineError, match="does not apply"):
         _cli(["cluster", str(tmp_path / "run"), "--method", "kmeans", "--combine", "entropy"])
+    with pytest.raises(ImpactlineError, match="--min-share does not apply"):
+        _cli(["cluster", str(tmp_path / "run"), "--method", "kmeans", "--min-share", "0.1"])
+    # A share so large that only the largest cluster counts: everything else unassigned, or moved into it.
+    assert _cli(argv + ["--min-share", "0.5"]) == 0
+    assert "; 1 clusters counted" in capsys.readouterr().out
+    clusters = pq.read_table(tmp_path / "run" / "clusters.parquet")
+    assert set(clusters.column("cluster").to_pylist()) == {-1, 0}
+    assert _cli(argv + ["--min-share", "0.5", "--minor", "reassign"]) == 0
+    assert "moved to their most probable other cluster" in capsys.readouterr().out
+    assert set(pq.read_table(tmp_path / "run" / "clusters.parquet").column("cluster").to_pylist()) == {0}
 
 
 def test_cluster_command_reports_the_features_left_out(tmp_path, capsys):

@@ -565,15 +565,19 @@ def cluster_sizes(events: pa.Table, labels: np.ndarray) -> pa.Table:
 def selection_table(rows: Sequence[Mapping[str, Any]]) -> pa.Table:
     """The model-selection report: one row per candidate cluster count.
 
-    Each row: ``method``, ``k``, ``criterion`` (``silhouette``, ``bic``, ``fixed``, ``density`` or
-    ``entropy``), ``score`` (the criterion's value; for ``density``, the share of events left unassigned;
-    for ``entropy``, the entropy in nats of the combined clustering; NaN when none), ``better`` (``higher``,
+    Each row: ``method``, ``k``, ``criterion`` (``silhouette``, ``bic``, ``fixed``, ``density``,
+    ``entropy`` or ``min_share``), ``score`` (the criterion's value; for ``density``, the share of events
+    left unassigned; for ``entropy``, the entropy in nats of the combined clustering; NaN when none),
+    ``better`` (``higher``,
     ``lower`` or, for ``entropy``, ``elbow``), ``chosen``. Rows of a combination of mixture components
     (``criterion = "entropy"``, one per number of clusters from the mixture's down to 1) also fill
     ``merged_events`` (cumulative events merged), ``elbow_rss``, ``merge`` (the two clusters joined at this
     step, as component sets), ``groups`` (the clusters, as component sets), ``silhouette`` (the step's mean
     silhouette, when the count rule is the silhouette) and ``decision`` (how the count was chosen: ``elbow``,
-    ``silhouette``, ``flat``, ``few`` or ``fixed``); other rows leave them null.
+    ``silhouette``, ``flat``, ``few`` or ``fixed``); other rows leave them null. A ``criterion = "min_share"``
+    row (Gaussian mixture) gives the clusters kept (``k``), the share of events in clusters too small to
+    count (``score``), what became of those events (``decision``: ``unassign`` or ``reassign``) and those
+    clusters as component sets (``groups``).
     """
     columns = {
         "method": Column("string", "", "clustering method"),
@@ -586,9 +590,10 @@ def selection_table(rows: Sequence[Mapping[str, Any]]) -> pa.Table:
         "elbow_rss": Column("float64", "", "entropy rows: residual sum of squares of the elbow fit at this count"),
         "silhouette": Column("float64", "", "entropy rows: mean silhouette of this step (count_rule silhouette)"),
         "merge": Column("string", "", "entropy rows: the two clusters (component sets) merged at this step"),
-        "groups": Column("string", "", "entropy rows: the clusters as sets of mixture components"),
+        "groups": Column("string", "", "entropy rows: the clusters as sets of mixture components; "
+                                       "min_share row: the clusters too small to count"),
         "decision": Column("string", "", "entropy rows: elbow, silhouette, flat (no merge), few (too few "
-                                         "components), fixed"),
+                                         "components), fixed; min_share row: unassign or reassign"),
     }
     schema = schema_for(columns)
     return pa.Table.from_arrays([pa.array([row.get(name) for row in rows], type=schema.field(name).type)

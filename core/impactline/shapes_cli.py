@@ -7,7 +7,9 @@ cluster RUN... [--method gmm|kmeans|density] [--k auto|N] [--combine none|entrop
     ``gmm``, ``--combine entropy`` merges the BIC mixture's components into clusters by the entropy
     criterion of Baudry et al. (2010); the entropy of each step and the count chosen go to the selection
     table. ``--count-rule silhouette`` keeps the step with the largest mean silhouette (Rousseeuw 1987)
-    instead of the elbow of the entropy plot, and records each step's silhouette.
+    instead of the elbow of the entropy plot, and records each step's silhouette. Clusters holding fewer
+    than ``--min-share`` of the events (gmm, default 2 %) do not count; their events are left unassigned
+    or, with ``--minor reassign``, moved to their most probable other cluster.
 train RUN... --labels FILE --out MODEL
     Trains a random forest on hand-labelled events (CSV or Parquet: file, event_id, label), prints the
     cross-validated accuracy and confusion matrix, and saves the model as plain arrays (no pickle).
@@ -89,6 +91,11 @@ def register_cli(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--count-rule", choices=("elbow", "silhouette"), default=None,
                    help="gmm with --combine entropy: keep the step at the elbow of the entropy plot (default) or "
                         "the one with the largest mean silhouette (Rousseeuw 1987)")
+    p.add_argument("--min-share", type=float, default=None,
+                   help="gmm: least share of the events a cluster needs to count (default 0.02; 0 keeps all)")
+    p.add_argument("--minor", choices=("unassign", "reassign"), default=None,
+                   help="gmm: events of clusters under --min-share are left unassigned (default) or moved to their "
+                        "most probable other cluster")
     p.add_argument("--min-cluster-size", type=int, default=None, help="density method: fewest events per cluster")
     p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
     p.add_argument("--quiet", action="store_true", help="no progress output")
@@ -221,14 +228,15 @@ def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
             raise ImpactlineError(f"--k expects 'auto' or a whole number of clusters, got {args.k!r}") from None
     if args.max_k is not None:
         params["max_k"] = args.max_k
-    if args.min_cluster_size is not None:
-        params["min_cluster_size"] = args.min_cluster_size
+    for key in ("min_cluster_size", "min_share", "minor"):
+        if getattr(args, key, None) is not None:
+            params[key] = getattr(args, key)
     for key in _COMBINE_OPTIONS:
         if getattr(args, key, None) is not None:
             params[key] = getattr(args, key)
     for key in list(params):
         if key not in declared:
-            if key in ("k", "max_k", "min_cluster_size", *_COMBINE_OPTIONS):
+            if key in ("k", "max_k", "min_cluster_size", "min_share", "minor", *_COMBINE_OPTIONS):
                 raise ImpactlineError(f"--{key.replace('_', '-')} does not apply to --method {args.method}")
             params.pop(key)
     combine = params.get("combine", declared["combine"].default if "combine" in declared else None)
@@ -280,6 +288,17 @@ def summarize_clusters(result: dict[str, Any], seconds: float) -> str:
             group = [row for row in rows if row["criterion"] == criterion]
             if criterion == "entropy":
                 lines.append(_combination_report(group))
+                continue
+            if criterion == "min_share":
+                row = group[0]
+                fate = ("left unassigned" if row["decision"] == "unassign"
+                        else "moved to their most probable other cluster")
+                threshold = getattr(stage, "min_share", None)
+                under = f"under {100 * threshold:g} % of the events" if threshold is not None else "too small"
+                lines.append(f"clusters {under}: " + (f"{row['groups']} (as mixture components), "
+                                                      f"{100 * row['score']:.1f} % of the events, {fate}"
+                                                      if row["groups"] else "none")
+                             + f"; {row['k']} clusters counted")
                 continue
             lines.append(f"number of clusters by {criterion} ({group[0]['better']} is better):")
             for row in group:

@@ -19,7 +19,8 @@ Quality
     are matched to true events by interval overlap (each true event to the first detected event overlapping
     it); the matched events are clustered and compared with the true shapes by the adjusted Rand index
     (:func:`sklearn.metrics.adjusted_rand_score`, Hubert & Arabie 1985). The Gaussian mixture runs with and
-    without combining its components by entropy (Baudry et al. 2010); for the combined runs the report also
+    without combining its components by entropy (Baudry et al. 2010), and with ``min_share = 0`` (clusters
+under 2 % of the events kept and counted, as before that rule); for the combined runs the report also
     gives the ARI of every step of the merge hierarchy (``hierarchy``: clusters, ARI), which shows what the
     best choice of the count would have given; with ``count_rule = "silhouette"`` also the mean silhouette of
     each step (Rousseeuw 1987), the rule that then chooses the count. For the trained classifier the matched
@@ -50,7 +51,8 @@ import pytest
 
 SHAPES = ("spike", "burst", "step", "blip", "tail_spike")
 #: Clusterings compared (method, parameters); the first is the one the goal is checked on.
-CLUSTERINGS = (("gmm", {}), ("gmm", {"combine": "none"}), ("gmm", {"elbow": "standard"}),
+CLUSTERINGS = (("gmm", {}), ("gmm", {"min_share": 0.0}), ("gmm", {"combine": "none"}),
+               ("gmm", {"elbow": "standard"}),
                ("gmm", {"count_rule": "silhouette"}), ("kmeans", {}), ("density", {}), ("kmeans", {"k": 5}))
 MIN_SNR = 10.0
 #: The waveform measure's alignment in the benchmark's pipeline (``--align`` to compare others).

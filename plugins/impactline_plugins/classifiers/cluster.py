@@ -28,7 +28,7 @@ from impactline.shapes import EMBEDDINGS, SHAPE_TRANSFORMS, Embedding, embed, se
 
 __all__ = ["KMeansShapes", "GaussianMixtureShapes", "DensityShapes", "relabel_by_size", "SILHOUETTE_SAMPLE",
            "COMBINE_METHODS", "ELBOW_AXES", "COUNT_RULES", "Combination", "assignment_entropy", "merge_posterior",
-           "combine_components", "elbow", "step_silhouettes", "choose_combination"]
+           "combine_components", "elbow", "step_silhouettes", "choose_combination", "MINOR_RULES", "minor_clusters"]
 
 #: Most events the silhouette criterion is computed on.
 SILHOUETTE_SAMPLE = 4000
@@ -37,6 +37,8 @@ COMBINE_METHODS: tuple[str, ...] = ("none", "entropy")
 ELBOW_AXES: tuple[str, ...] = ("normalized", "standard")
 #: Rules choosing the step of the merge hierarchy: the entropy plot's elbow, or the largest mean silhouette.
 COUNT_RULES: tuple[str, ...] = ("elbow", "silhouette")
+#: What becomes of the events of a cluster too small to count (``min_share``): unassigned, or moved.
+MINOR_RULES: tuple[str, ...] = ("unassign", "reassign")
 
 _COMMON_PARAMS: dict[str, Param] = {
     "embedding": Param("pca+features", kind=str, choices=EMBEDDINGS,
@@ -454,6 +456,29 @@ def choose_combination(combination: Combination, axis: str = "normalized", min_g
     return step, rss, "elbow"
 
 
+def minor_clusters(labels: np.ndarray, n_clusters: int, min_share: float) -> np.ndarray:
+    """Clusters holding fewer than ``min_share`` of the events (the largest cluster never counts as minor).
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (n_events,)
+        Cluster of each event, ``0 ... n_clusters - 1``.
+    n_clusters : int
+    min_share : float
+        Least fraction of the events a cluster must hold, 0 to 1; 0 makes no cluster minor.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_clusters,)
+        True for the minor clusters.
+    """
+    counts = np.bincount(np.asarray(labels, dtype=np.int64), minlength=n_clusters)[:n_clusters]
+    minor = counts < min_share * max(int(counts.sum()), 1)
+    if minor.all():
+        minor[int(np.argmax(counts))] = False
+    return minor
+
+
 class GaussianMixtureShapes(_ShapeClusterer):
     """Gaussian mixture on the embedded shapes; components by BIC, optionally combined into clusters.
 
@@ -471,6 +496,14 @@ class GaussianMixtureShapes(_ShapeClusterer):
     4000 of the fitted events) is kept instead; on the simulator's recordings it merges too far
     (docs/shapes.md), so the elbow stays the default.
 
+    A cluster holding fewer than ``min_share`` of the events (2 % by default) is *minor*: too small to
+    count as a kind of event (on the simulator's recordings such clusters hold 0.3-3 % of the events, about
+    half of them more than one collision each; docs/shapes.md). With ``minor = "unassign"`` its events
+    are left unassigned (``cluster = -1``, as a density method leaves noise); with ``"reassign"`` each goes
+    to the most probable of the other clusters (posteriors renormalized over them). Either way
+    ``cluster_count`` counts only the others, and the selection table gets a ``criterion = "min_share"``
+    row (``score``: share of events in minor clusters; ``groups``: the minor clusters' components).
+
     Each event goes to its most probable cluster; ``cluster_probability`` is that posterior probability
     and ``cluster_component`` its most probable mixture component (numbered by size, like clusters).
     After :meth:`fit_predict`, ``mixture_`` is the fitted :class:`~sklearn.mixture.GaussianMixture`,
@@ -480,7 +513,7 @@ class GaussianMixtureShapes(_ShapeClusterer):
 
     name: ClassVar[str] = "gmm"
     summary: ClassVar[str] = "Gaussian mixture on event shapes; components by BIC, optionally combined by entropy"
-    version: ClassVar[str] = "2"
+    version: ClassVar[str] = "3"  # 3: clusters under min_share (2 %) dissolved
     method: ClassVar[str] = "gmm"
     params: ClassVar[dict[str, Param]] = {
         **_COMMON_PARAMS,
@@ -505,6 +538,12 @@ class GaussianMixtureShapes(_ShapeClusterer):
         "count_rule": Param("elbow", kind=str, choices=COUNT_RULES,
                             doc="with combine: step of the merge hierarchy kept, the elbow of the entropy plot "
                                 "or the largest mean silhouette (Rousseeuw 1987)"),
+        "min_share": Param(0.02, low=0, high=0.5,
+                           doc="least share of the events a cluster needs to count; smaller (minor) clusters "
+                               "are dissolved as 'minor' says; 0 keeps them all"),
+        "minor": Param("unassign", kind=str, choices=MINOR_RULES,
+                       doc="events of minor clusters: left unassigned (-1) or moved to their most probable "
+                           "other cluster"),
     }
     columns: ClassVar[dict[str, Column]] = {
         "cluster": _CLUSTER_COLUMN,
@@ -551,9 +590,32 @@ class GaussianMixtureShapes(_ShapeClusterer):
                                                    silhouette)
             self.combination_ = combination
             rows += _combination_rows(self.method, combination, step, rss, reason, silhouette)
-            posterior = merge_posterior(posterior, combination.groups[step])
+            groups = combination.groups[step]
+            posterior = merge_posterior(posterior, groups)
+        else:
+            groups = [(j,) for j in range(k)]
         labels = np.argmax(posterior, axis=1)
-        return labels, {"cluster_probability": posterior[np.arange(X.shape[0]), labels],
+        probability = posterior[np.arange(X.shape[0]), labels]
+        minor = minor_clusters(labels, len(groups), self.min_share)
+        if self.min_share > 0:
+            in_minor = minor[labels]
+            if self.minor == "reassign" and in_minor.any():
+                kept = posterior[in_minor][:, ~minor]
+                total = kept.sum(axis=1, keepdims=True)
+                # An event with no posterior mass left on the kept clusters goes to the most probable of them
+                # by the unnormalized posterior (all zeros: the first), rather than dividing by zero.
+                kept = np.divide(kept, total, out=np.zeros_like(kept), where=total > 0)
+                choice = np.argmax(kept, axis=1)
+                labels[in_minor] = np.flatnonzero(~minor)[choice]
+                probability[in_minor] = kept[np.arange(choice.size), choice]
+            elif in_minor.any():
+                labels[in_minor] = -1
+                probability[in_minor] = math.nan
+            rows.append({"method": self.method, "k": int(np.count_nonzero(~minor)), "criterion": "min_share",
+                         "score": float(np.mean(in_minor)), "better": "lower", "chosen": True,
+                         "decision": self.minor,
+                         "groups": " ".join(_group_text(g) for g, m in zip(groups, minor, strict=True) if m)})
+        return labels, {"cluster_probability": probability,
                         "cluster_component": component, "cluster_bic": np.full(X.shape[0], bic)}, rows
 
 
