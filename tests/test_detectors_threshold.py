@@ -69,7 +69,10 @@ def test_rectangular_pulses_found_once_with_their_bounds():
         assert event.extras["n_subpeaks"] == 1
         assert s <= event.extras["peak_index"] < s + w
         assert event.polarity == 1 and event.extras["split"] is False
-        assert event.noise_rms_A == pytest.approx(SIGMA, rel=0.05)
+        # 1.4826 x quiet-side MAD of 5,000 samples (10,000-sample blocks, stride 2): standard error
+        # 1.789 sigma / sqrt(5000) = 2.5 % (derivation at _difference_standard_errors); 4 of them. abs=0, or
+        # approx's default absolute tolerance (1e-12) would accept anything from 0 to 2 pA.
+        assert event.noise_rms_A == pytest.approx(SIGMA, rel=4 * 1.789 / np.sqrt(5000), abs=0)
         assert abs(event.baseline_A) < 0.1 * SIGMA
 
 
@@ -190,13 +193,28 @@ def test_noise_estimate_is_the_spread_of_coloured_noise_even_with_events():
     starts = np.arange(3_000, n - 3_000, 2_500)  # 200 events covering 8 % of the record
     for s in starts:
         _spike(x, s, 40 * sigma, 40, 200)
-    events = detect_array(ThresholdDetector(release_sigma=1), x, fs, 65536)
+    # The whole-block estimator first (stat_samples = 0): the figures of docs/detectors.md.
+    events = detect_array(ThresholdDetector(release_sigma=1, stat_samples=0), x, fs, 65536)
     # Correlated noise holds the signal above the release level for a few samples at a time, so starts
     # move earlier by up to ~1/fc; a noise bump on a decaying tail may add a separate small event.
     matched = [e for e in events if np.min(np.abs(starts - e.start_index)) <= 8]
     assert len(matched) == len(starts) and len(events) - len(matched) <= 3
     estimates = np.array([e.noise_rms_A for e in events[5:]])  # past the filter's start-up transient
     assert np.all(np.abs(estimates / sigma - 1.0) < 0.05)
+    # The default estimator (every 4th sample of each block) finds the same spikes and stays within 5
+    # standard errors of the whole-block value in every block, the standard error computed for this very
+    # spectrum: autocorrelation of 0.3 x white + 2 x differenced white, through the filter.
+    default = detect_array(ThresholdDetector(release_sigma=1), x, fs, 65536)
+    assert sum(np.min(np.abs(starts - e.start_index)) <= 8 for e in default) == len(starts)
+    impulse = signal.sosfilt(signal.bessel(4, 25e3, fs=fs, norm="mag", output="sos"), np.r_[1.0, np.zeros(3000)])
+    differenced = np.diff(np.r_[0.0, impulse])
+    acf = (0.09 * np.correlate(impulse, impulse, "full") + 4 * np.correlate(differenced, differenced, "full"))
+    acf = acf[len(impulse) - 1:len(impulse) + 399]
+    se_sigma = _difference_standard_errors(acf / acf[0], 25_000, 4)[1]
+    whole_block = {e.start_index // 25_000: e.noise_rms_A for e in events}
+    strided = {e.start_index // 25_000: e.noise_rms_A for e in default}
+    gaps = np.array([(strided[j] - whole_block[j]) / sigma for j in whole_block])
+    assert len(gaps) == 20 and np.max(np.abs(gaps)) < 5 * se_sigma, (np.max(np.abs(gaps)), se_sigma)
     # Why not first differences: for this spectrum they see about half of the noise (lag-1 correlation
     # ~0.75; differences have variance 2 sigma^2 (1 - rho_1)), so a threshold set from them would fire on
     # noise all the time.
@@ -267,6 +285,211 @@ def test_parameter_errors_name_the_parameter():
         detector.process(np.zeros(100), 150, state)
 
 
+def _hand_block_statistics(x, block, stride_of):
+    """Block levels, centres, baseline line and quiet-side (anodic) noise of ``x``, written out with numpy.
+
+    A plain restatement of the documented estimator (docs/detectors.md, "Baseline" and "Noise"): per block
+    the median of the subsample ``x[a:b][::stride_of(b - a)]``, 1.4826 x MAD about it, the median again of
+    the subsample within 3 of those sigmas; the line between block centres (the end segments extended);
+    1.4826 x the median magnitude of the negative residuals of the same subsample. A tail of at least
+    half a block is a block of its own (``len(x)`` is chosen so that it is).
+    """
+    bounds = [(a, min(a + block, len(x))) for a in range(0, len(x), block)]
+    levels, centres = [], []
+    for a, b in bounds:
+        sub = x[a:b][::stride_of(b - a)]
+        first = np.median(sub)
+        spread = np.abs(sub - first)
+        sigma = MAD_TO_SIGMA * np.median(spread)
+        levels.append(np.median(sub[spread <= 3.0 * sigma]))
+        centres.append(a + (b - a - 1) / 2.0)
+    pos = np.arange(len(x), dtype=np.float64)
+    line = np.interp(pos, centres, levels)
+    for edge, (i, k) in (((pos < centres[0]), (0, 1)), ((pos > centres[-1]), (-2, -1))):
+        slope = (levels[k] - levels[i]) / (centres[k] - centres[i])
+        line[edge] = levels[i] + slope * (pos[edge] - centres[i])
+    noise = []
+    for a, b in bounds:
+        sub = (x - line)[a:b][::stride_of(b - a)]
+        noise.append(MAD_TO_SIGMA * np.median(-sub[sub < 0]))
+    return line, np.array(noise)
+
+
+def test_block_statistics_are_the_documented_estimator_on_every_s_th_sample():
+    # 3 blocks of 1000 samples and a 600-sample tail (a block of its own), a pulse in each: each event
+    # carries its block's noise and the baseline line at its start.
+    fs, block = 100e3, 1000
+    rng = np.random.default_rng(21)
+    x = rng.normal(0.0, SIGMA, 3600) + 2 * SIGMA * np.linspace(0.0, 1.0, 3600)
+    for start in (480, 1500, 2400, 3300):
+        _pulse(x, start, 20, 12 * SIGMA)
+    cases = {0: lambda n: 1,                          # every sample (the estimator before stat_samples)
+             300: lambda n: -(-n // 300)}             # stride 4 in the full blocks, 2 in the tail
+    found = {}
+    for stat_samples, stride_of in cases.items():
+        events = detect_array(ThresholdDetector(stat_samples=stat_samples, baseline_window="10 ms"), x, fs, 777)
+        line, noise = _hand_block_statistics(x, block, stride_of)
+        assert [(e.start_index + 50) // block for e in events] == [0, 1, 2, 3]
+        for e in events:
+            assert e.noise_rms_A == pytest.approx(noise[e.start_index // block], rel=1e-12, abs=0)
+            assert e.baseline_A == pytest.approx(line[e.start_index], rel=0, abs=1e-9 * SIGMA)
+        found[stat_samples] = signature(events)
+    # The subsample changes the values (so the comparison above tells the two apart) ...
+    assert [ev[3] for ev in found[0]] != [ev[3] for ev in found[300]]
+    # ... and a subsample as long as the block is the block: the same events as stat_samples = 0, bit for bit.
+    for stat_samples in (1000, 5000):
+        events = detect_array(ThresholdDetector(stat_samples=stat_samples, baseline_window="10 ms"), x, fs, 777)
+        assert signature(events) == found[0]
+
+
+@pytest.mark.parametrize("stat_samples", [8192, 1000])
+def test_strided_statistics_identical_whatever_the_chunking(stat_samples):
+    # At 100 kHz a 100 ms block is 10,000 samples: stride 2 (default) or 10; the 5,500-sample tail is a block
+    # with stride 1 or 6. Chunk borders never line up with the strided samples.
+    x, fs = _busy_record()
+    x = x[:295_500]
+    detector = ThresholdDetector(stat_samples=stat_samples)
+    reference = signature(detect_array(detector, x, fs, None, check_contract=True))
+    assert len(reference) >= 12
+    assert reference != signature(detect_array(ThresholdDetector(stat_samples=0), x, fs))
+    for chunks in (4096, 10007, [1, 999, 17, 5000, 333]):
+        assert signature(detect_array(detector, x, fs, chunks, check_contract=True)) == reference, chunks
+
+
+# First-order standard error of (subsample estimate - whole-block estimate), from the influence functions.
+# The sample median's Bahadur representation (Bahadur 1966, "A note on quantiles in large samples", Ann. Math.
+# Statist. 37:577; from memory) makes it theta + mean(1/2 - 1{x < theta}) / f(theta); for independent normal
+# samples that gives the asymptotic standard error sqrt(pi/2) sigma / sqrt(n) = 1.2533 sigma / sqrt(n)
+# (Kendall & Stuart, The Advanced Theory of Statistics vol. 1, sampling distribution of quantiles; from
+# memory). The quiet-side noise t solves mean(1{r < -t}) = mean(1{r < 0}) / 2 with r = x - level; expanding
+# in t and the level (computed here) gives the influence (1.4826 / phi(t0)) (1{x < -t0} - beta 1{x < 0} + c),
+# t0 = Phi^-1(3/4), beta = 1/2 + (phi(t0) - phi(0)/2) / phi(0): 1.789 sigma / sqrt(n) for independent samples
+# (a Monte Carlo of the detector itself gave 1.73 to 1.83). For correlated (filtered) noise the covariance
+# of two indicators at lag k is a bivariate-normal orthant probability of the correlation rho_k; the
+# difference of two nested means with weights w has variance sum_k gamma(k) sum_i w_i w_{i+k}, gamma(k) the
+# influence covariance at lag k (computed here).
+_T0 = stats.norm.ppf(0.75)
+
+
+def _lower_orthant(h, k, rho):
+    """P(X < h, Y < k) for standard normals of correlation ``rho`` (array), by quadrature over X."""
+    x = np.linspace(-9.0, h, 6001)[:, None]
+    r = np.clip(rho, -0.999999, 0.999999)[None, :]
+    dens = stats.norm.pdf(x) * stats.norm.cdf((k - r * x) / np.sqrt(1 - r * r))
+    out = np.trapezoid(dens, x[:, 0], axis=0)
+    out[rho >= 0.999999] = stats.norm.cdf(min(h, k))
+    return out
+
+
+def _difference_standard_errors(rho, n, stride):
+    """Standard errors (in sigmas) of the level and noise-sigma differences, subsample minus whole block.
+
+    ``rho``: noise autocorrelation at lags 0, 1, ... (negligible beyond); ``n``: block length in samples.
+    """
+    # P(X < 0, Y < 0) = 1/4 + arcsin(rho) / (2 pi) (Sheppard 1899, Phil. Trans. A 192:101; from memory):
+    # checked against the quadrature, so the quadrature is right where it matters.
+    assert np.allclose(_lower_orthant(0.0, 0.0, rho), 0.25 + np.arcsin(rho) / (2 * np.pi), atol=1e-7)
+    phi0, phit = stats.norm.pdf(0.0), stats.norm.pdf(_T0)
+    beta = 0.5 + (phit - phi0 / 2) / phi0
+    c_bb = np.arcsin(rho) / (2 * np.pi)
+    c_aa = _lower_orthant(-_T0, -_T0, rho) - 1 / 16
+    c_ab = _lower_orthant(-_T0, 0.0, rho) - 1 / 8
+    gamma_level = c_bb / phi0**2
+    gamma_sigma = (MAD_TO_SIGMA / phit) ** 2 * (c_aa - 2 * beta * c_ab + beta**2 * c_bb)
+    m = -(-n // stride)
+    w = np.full(n, -1.0 / n)
+    w[::stride] += 1.0 / m
+    lag_sums = np.array([np.dot(w[:n - k], w[k:]) for k in range(len(rho))])
+    twice = np.r_[1.0, np.full(len(rho) - 1, 2.0)]   # lags -k and +k
+    return np.sqrt(np.sum(twice * gamma_level * lag_sums)), np.sqrt(np.sum(twice * gamma_sigma * lag_sums))
+
+
+@pytest.mark.parametrize("cutoff_hz", [None, 15e3])
+def test_strided_statistics_agree_with_the_whole_block_within_their_standard_error(cutoff_hz, monkeypatch):
+    fs, block = 250e3, 25_000   # defaults: 100 ms blocks at 250 kHz, stat_samples 8192 -> stride 4
+    stride = -(-block // 8192)
+    impulse = np.r_[1.0, np.zeros(3000)]
+    if cutoff_hz is not None:   # 4-pole Bessel low-pass, as the default pipeline applies
+        sos = signal.bessel(4, cutoff_hz, fs=fs, norm="mag", output="sos")
+        impulse = signal.sosfilt(sos, impulse)
+    acf = np.correlate(impulse, impulse, "full")[len(impulse) - 1:]
+    rho = acf[:400] / acf[0]
+    assert abs(rho[-1]) < 1e-6
+    se_level, se_sigma = _difference_standard_errors(rho, block, stride)
+    if cutoff_hz is None:   # white noise: the nested-sample formula c sqrt(1/m - 1/n)
+        assert se_level == pytest.approx(np.sqrt(np.pi / 2) * np.sqrt(1 / 6250 - 1 / block), rel=1e-6)
+
+    seen: dict[int, dict[str, list]] = {}
+    level, noise = ThresholdDetector._level, ThresholdDetector._noise
+
+    def record_level(self, st, a, b):
+        out = level(self, st, a, b)
+        seen.setdefault(id(self), {"level": [], "sigma": []})["level"].append(out[0])
+        return out
+
+    def record_noise(self, residual):
+        out = noise(self, residual)
+        seen.setdefault(id(self), {"level": [], "sigma": []})["sigma"].append(out)
+        return out
+
+    monkeypatch.setattr(ThresholdDetector, "_level", record_level)
+    monkeypatch.setattr(ThresholdDetector, "_noise", record_noise)
+    differences = {"level": [], "sigma": []}
+    for seed in range(4):
+        rng = np.random.default_rng(100 + seed)
+        x = SIGMA * signal.convolve(rng.normal(size=40 * block), impulse)[:40 * block] / np.sqrt(acf[0])
+        whole, strided = ThresholdDetector(stat_samples=0), ThresholdDetector()
+        detect_array(whole, x, fs, 1 << 16)
+        detect_array(strided, x, fs, 1 << 16)
+        for key in differences:
+            differences[key] += list((np.array(seen[id(strided)][key]) - seen[id(whole)][key]) / SIGMA)
+        seen.clear()
+    for key, se in (("level", se_level), ("sigma", se_sigma)):
+        d = np.array(differences[key])
+        n_blocks = d.size   # blocks are nearly independent: the correlation time is < 0.1 % of a block
+        # No block beyond 5 standard errors (probability 6e-7 per block for a normal difference) ...
+        assert np.max(np.abs(d)) < 5 * se, (key, np.max(np.abs(d)), se)
+        # ... no bias beyond 5 standard errors of a mean over the blocks ...
+        assert abs(np.mean(d)) < 5 * se / np.sqrt(n_blocks), (key, np.mean(d), se)
+        # ... and the spread is the predicted one: the rms of 160 differences has a relative standard error of
+        # 1/sqrt(2 x 160) = 6 %, so 0.7-1.3 is 5 of them. Stride 1 would give 0, stride 8 about 1.5.
+        assert 0.7 < np.sqrt(np.mean(d * d)) / se < 1.3, (key, np.sqrt(np.mean(d * d)), se)
+
+
+def _run_sharing(variants, x, fs, memo, chunk=7000):
+    """Signatures of the events of ``variants`` started with one ``memo`` and fed interleaved chunks."""
+    states = [d.start_shared(fs, memo) for d in variants]
+    shared: list[list] = [[] for _ in variants]
+    for at in range(0, x.size, chunk):
+        for i, d in enumerate(variants):
+            events, states[i] = d.process(x[at:at + chunk], at, states[i])
+            shared[i] += events
+        # Entries are dropped once every sharer has read them: the memo stays small however long the stream.
+        assert all(len(book.values) <= 4 for book in memo.values())
+    for i, d in enumerate(variants):
+        shared[i] += d.finish(states[i])
+    return [signature(events) for events in shared]
+
+
+def test_detectors_with_other_subsamples_never_share_block_statistics():
+    # Memo entries are keyed by the subsample too: stride 2 (8192 at 10,000-sample blocks), 10 (1000) and 1
+    # (0, and 20,000 which is longer than the block: one entry for the two). Each finds what it finds alone.
+    x, fs = _busy_record()
+    x = x[:295_500]   # a tail block too, with its own stride
+    variants = [ThresholdDetector(), ThresholdDetector(stat_samples=1000), ThresholdDetector(stat_samples=0),
+                ThresholdDetector(stat_samples=20_000, k_sigma=4)]
+    alone = [signature(detect_array(d, x, fs, 7000)) for d in variants]
+    assert len({tuple(a) for a in alone}) == 4
+    memo: dict = {}
+    assert _run_sharing(variants, x, fs, memo) == alone
+    assert len(memo) == 3 * 3   # levels, residuals, noise for each of strides 2, 10 and 1
+
+
+def test_stat_samples_must_not_be_negative():
+    with pytest.raises(ParameterError, match="stat_samples.*expected an integer \\(>= 0\\), got -1"):
+        ThresholdDetector(stat_samples=-1)
+
+
 def test_lookback_covers_max_duration_and_two_blocks():
     detector = ThresholdDetector(max_duration="10 ms", baseline_window="50 ms")
     assert detector.lookback_samples(100e3) == 1000 + 2 * 5000 + 1
@@ -285,17 +508,7 @@ def test_detectors_sharing_a_memo_find_exactly_what_each_finds_alone(monkeypatch
     original = ThresholdDetector._noise
     monkeypatch.setattr(ThresholdDetector, "_noise", lambda self, r: noise_calls.append(1) or original(self, r))
     memo: dict = {}
-    states = [d.start_shared(fs, memo) for d in variants]
-    shared: list[list] = [[] for _ in variants]
-    for at in range(0, x.size, 7000):
-        for i, d in enumerate(variants):
-            events, states[i] = d.process(x[at:at + 7000], at, states[i])
-            shared[i] += events
-        # Entries are dropped once every sharer has read them: the memo stays small however long the stream.
-        assert all(len(book.values) <= 4 for book in memo.values())
-    for i, d in enumerate(variants):
-        shared[i] += d.finish(states[i])
-    assert [signature(events) for events in shared] == alone
+    assert _run_sharing(variants, x, fs, memo) == alone
     assert all(len(events) > 10 for events in alone)
     # Levels and residuals: one book each per window (100 ms, 30 ms); noise: one per window and polarity,
     # each block's noise computed once per book (30 blocks of 100 ms, 100 of 30 ms), not once per detector.
