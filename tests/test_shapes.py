@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 
 import numpy as np
 import pyarrow as pa
@@ -682,6 +683,28 @@ def test_gmm_dissolves_clusters_under_min_share():
                   for c in range(far.shape[1]) if c != own}
     assert out["cluster"][y == 3].tolist() == [cluster_of[c] for c in np.argmax(far, axis=1)]
     assert next(r for r in moved.selection_.to_pylist() if r["criterion"] == "min_share")["decision"] == "reassign"
+
+
+def test_clustering_runs_blas_on_one_thread(monkeypatch):
+    # Thin matrices gain nothing from BLAS threads, and threads spinning against a busy core cost 10x or more
+    # (docs/shapes.md): every clustering stage fits inside a one-thread BLAS limit, lifted afterwards.
+    from threadpoolctl import threadpool_info
+
+    table, _ = _three_classes_and_a_handful()
+    seen = {}
+    for cls in (GaussianMixtureShapes, KMeansShapes, DensityShapes):
+        original = cls._cluster
+
+        def spy(self, emb, original=original, name=cls.name):
+            seen[name] = {pool["num_threads"] for pool in threadpool_info() if pool["user_api"] == "blas"}
+            return original(self, emb)
+
+        monkeypatch.setattr(cls, "_cluster", spy)
+        fixed = {"k": 3} if cls is KMeansShapes else {}
+        cls(embedding="features", features=["a", "b"], **fixed).fit_predict(table)
+    assert seen == {"gmm": {1}, "kmeans": {1}, "density": {1}}
+    after = {pool["num_threads"] for pool in threadpool_info() if pool["user_api"] == "blas"}
+    assert after != {1} or os.cpu_count() == 1   # the limit is lifted again
 
 
 def test_density_leaves_outliers_unassigned_also_beyond_the_fitted_sample():

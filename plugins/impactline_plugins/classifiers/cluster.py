@@ -109,7 +109,13 @@ class _ShapeClusterer(Classifier):
             self.selection_ = selection_table([])
             out["cluster_count"][:] = 0
             return out
-        labels, extra, rows = self._cluster(emb)
+        from threadpoolctl import threadpool_limits
+
+        # One BLAS thread: the matrices are thin (events x at most ~20 coordinates), so threads gain little,
+        # and OpenBLAS threads spinning against a busy core cost a great deal (10,000 events: 18 s on one
+        # thread, 290 s on two while another process held one of the machine's two cores).
+        with threadpool_limits(limits=1, user_api="blas"):
+            labels, extra, rows = self._cluster(emb)
         labels = relabel_by_size(labels)
         self.selection_ = selection_table(rows)
         out["cluster"][emb.valid] = labels
