@@ -327,6 +327,23 @@ def _crossing_down(y: np.ndarray, level: float, j: int) -> float:
     return j - 1 + float((y[j - 1] - level) / (y[j - 1] - y[j]))
 
 
+def _first_below(y: np.ndarray, level: float, start: int) -> int:
+    """Index of the first sample of ``y`` from ``start`` on that is below ``level``; -1 when there is none.
+
+    Searched in windows growing fourfold from 64 samples, so finding a crossing near ``start`` costs the
+    same in a long event (a step of many milliseconds) as in a short one.
+    """
+    lo, width = start, 64
+    while lo < y.size:
+        hi = min(lo + width, y.size)
+        below = y[lo:hi] < level
+        k = int(np.argmax(below))   # the first True, when there is one
+        if below[k]:
+            return lo + k
+        lo, width = hi, 4 * width
+    return -1
+
+
 def pulse_shape_figures(y: np.ndarray, peak_at: int) -> tuple[float, float, float] | None:
     """Leading half-height crossing, width at half height and tail asymmetry of the pulse peaking at ``peak_at``.
 
@@ -355,20 +372,18 @@ def pulse_shape_figures(y: np.ndarray, peak_at: int) -> tuple[float, float, floa
     # argmax of a boolean array is its first True (or 0 when there is none, checked where it can happen):
     # it runs once per event, where index arrays from flatnonzero cost more than the search.
     first = int(np.argmax(y[:peak_at + 1] >= half))
-    rise = _crossing_up(y, half, first) if first > 0 else 0.0
-    below = y[peak_at:] < half
-    j = int(np.argmax(below))
-    if not below[j]:
-        return rise, math.inf, math.nan
-    j += peak_at
-    fall = _crossing_down(y, half, j)
     low_before = y[:first] < quarter
     last_low = first - 1 - int(np.argmax(low_before[::-1])) if first else -1
-    low_after = y[j:] < quarter
-    k = int(np.argmax(low_after))
-    if last_low < 0 or not low_before[last_low] or not low_after[k]:
+    if last_low >= 0 and not low_before[last_low]:
+        last_low = -1
+    rise = _crossing_up(y, half, first) if first > 0 else 0.0
+    j = _first_below(y, half, peak_at)
+    if j < 0:
+        return rise, math.inf, math.nan
+    fall = _crossing_down(y, half, j)
+    k = _first_below(y, quarter, j)
+    if last_low < 0 or k < 0:
         return rise, fall - rise, math.nan
-    k += j
     rise_quarter = _crossing_up(y, quarter, last_low + 1)
     fall_quarter = _crossing_down(y, quarter, k)
     return rise, fall - rise, ((fall_quarter - fall) - (rise - rise_quarter)) / (fall - rise)
@@ -435,12 +450,23 @@ def leading_edge(y: np.ndarray, noise_rms: float, start: int = 0, drop_sigmas: f
     rising = y[start:]
     if not rising.size:
         return None
-    peak_at = int(np.argmax(rising))
+    peak_at = -1
+    drop = drop_sigmas * noise_rms
     if noise_rms > 0:
-        fallen = np.maximum.accumulate(rising) - rising >= drop_sigmas * noise_rms
-        first_fall = int(np.argmax(fallen))   # the first True, when there is one
-        if fallen[first_fall]:
-            peak_at = int(np.argmax(rising[:first_fall]))
+        # The running maximum of a prefix is the prefix of the running maximum, so the first fall is looked
+        # for in prefixes growing fourfold: a first peak near the start costs little in a long event.
+        width = 64
+        while peak_at < 0:
+            head = rising[:width]
+            fallen = np.maximum.accumulate(head) - head >= drop
+            first_fall = int(np.argmax(fallen))   # the first True, when there is one
+            if fallen[first_fall]:
+                peak_at = int(np.argmax(head[:first_fall]))
+            elif width >= rising.size:
+                break
+            width *= 4
+    if peak_at < 0:
+        peak_at = int(np.argmax(rising))
     half = 0.5 * float(rising[peak_at])
     # Walk back over context samples still above half, keeping one below it for the interpolation.
     lo, floor = start, max(0, start - lookback)
