@@ -74,6 +74,13 @@ def test_check_chunk_names_the_bad_sample_and_the_gap():
         check_chunk("threshold", np.zeros(3), 600, 500)
     with pytest.raises(ValueError, match="1-D"):
         check_chunk("threshold", np.zeros((2, 2)), 0, None)
+    # Finite values whose sum overflows are still finite samples; inf is named wherever it sits.
+    huge = np.array([1e308, 1e308, -5.0])
+    assert check_chunk("threshold", huge, 0, None) is not None
+    with pytest.raises(ValueError, match="sample 7 is -inf"):
+        check_chunk("threshold", np.array([1.0, 2.0, -np.inf, 1e308]), 5, None)
+    with pytest.raises(ValueError, match="sample 3 is inf"):   # inf - inf: the sum is nan, the first bad is named
+        check_chunk("threshold", np.array([0.0, np.inf, -np.inf]), 2, None)
 
 
 class _LateDetector(ThresholdDetector):

@@ -499,7 +499,8 @@ class ThresholdDetector(Detector):
             return 0
 
         def run_end(i: int) -> int:
-            width = 64
+            # A run usually ends a pulse's decay after its trigger (a few hundred samples): one look then does.
+            width = 256
             lo = i
             while lo < n:
                 hi = min(lo + width, n)
