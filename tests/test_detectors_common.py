@@ -37,6 +37,19 @@ def test_median_matches_numpy(n):
     assert median(values) == pytest.approx(float(np.median(values)), rel=1e-15, abs=1e-300)
 
 
+@pytest.mark.parametrize("n", [1, 2, 7, 10, 8192, 8193])
+def test_row_medians_match_numpy_exactly_and_leave_the_input_alone(n):
+    from impactline.robust import row_medians
+
+    values = np.random.default_rng(n).normal(size=(5, n))
+    before = values.copy()
+    # numpy.median as the reference library; the same two middle values and the same mean of them, so equal.
+    np.testing.assert_array_equal(row_medians(values), np.median(values, axis=1))
+    np.testing.assert_array_equal(values, before)
+    strided = np.random.default_rng(n + 1).normal(size=(3, 8 * n))[:, ::8]   # a view, as the noise meter passes
+    np.testing.assert_array_equal(row_medians(strided), np.median(strided, axis=1))
+
+
 def test_robust_sigma_of_gaussian_and_contaminated_samples():
     rng = np.random.default_rng(11)
     clean = rng.normal(3.0, 2.0, 200_000)

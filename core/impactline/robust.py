@@ -6,6 +6,7 @@ across readers, detectors, measures and the noise analysis.
 =================  ==============================================================================
 MAD_TO_SIGMA       1 / Phi^-1(3/4) = 1.482602...: MAD of Gaussian data -> its standard deviation
 median             median of a 1-D array (same value as ``numpy.median``, faster on long blocks)
+row_medians        median of each row of a 2-D array, the same way
 robust_sigma       1.4826 x MAD about the median (or a given centre), rms fallback for quantised data
 =================  ==============================================================================
 """
@@ -14,7 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["MAD_TO_SIGMA", "median", "robust_sigma"]
+__all__ = ["MAD_TO_SIGMA", "median", "row_medians", "robust_sigma"]
 
 #: Scale factor turning the median absolute deviation of Gaussian data into its standard deviation,
 #: 1 / Phi^-1(3/4) = 1.482602... (Hampel 1974, "The influence curve and its role in robust estimation",
@@ -48,6 +49,31 @@ def median(values: np.ndarray) -> float:
     if n % 2:
         return upper
     return 0.5 * (float(part[:half].max()) + upper)
+
+
+def row_medians(values: np.ndarray) -> np.ndarray:
+    """Median of each row of a 2-D array (same values as ``numpy.median(values, axis=1)``, faster).
+
+    One partition per row plus the maximum of the lower half, as :func:`median` does; ``values`` is not
+    modified (the rows are partitioned in a copy).
+
+    Parameters
+    ----------
+    values : ndarray, shape (n_rows, n)
+        Samples, any unit; ``n >= 1``.
+
+    Returns
+    -------
+    ndarray, shape (n_rows,)
+        The median of each row, same unit.
+    """
+    part = np.array(values, dtype=np.float64)
+    n = part.shape[1]
+    half = n // 2
+    part.partition(half, axis=1)
+    if n % 2:
+        return part[:, half].copy()
+    return 0.5 * (part[:, :half].max(axis=1) + part[:, half])
 
 
 def robust_sigma(values: np.ndarray, centre: float | None = None) -> float:

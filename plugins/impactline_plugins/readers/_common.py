@@ -359,11 +359,17 @@ class Scaling:
 
         ``zero`` is the stored value of zero current (128 for unsigned 8-bit PCM, otherwise 0).
         """
-        samples = np.array(raw, dtype=np.float64, copy=True).reshape(-1)
-        if zero:
-            samples -= zero
-        if self.gain_A_per_count != 1.0:
-            samples *= self.gain_A_per_count
+        if zero or self.gain_A_per_count == 1.0:
+            samples = np.array(raw, dtype=np.float64, copy=True).reshape(-1)
+            if zero:
+                samples -= zero
+            if self.gain_A_per_count != 1.0:
+                samples *= self.gain_A_per_count
+        else:
+            # Converting and scaling in one pass: the same values (each sample widened to float64, then
+            # multiplied), one sweep over the chunk fewer. np.asarray first, so a memory map's subclass
+            # does not carry over to the result.
+            samples = np.multiply(np.asarray(raw), self.gain_A_per_count, dtype=np.float64).reshape(-1)
         if self.offset_A:
             samples += self.offset_A
         return samples
