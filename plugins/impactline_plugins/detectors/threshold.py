@@ -386,7 +386,10 @@ class ThresholdDetector(Detector):
                            (slice(split, len(pos)), lower if upper == j else j, upper)):
             if a != b:
                 ca, la, cb, lb = st.centres[a], st.levels[a], st.centres[b], st.levels[b]
-                out[part] = la + (lb - la) * ((pos[part] - ca) / (cb - ca))
+                line = pos[part] - ca   # one temporary, scaled and shifted in place
+                line *= (lb - la) / (cb - ca)
+                line += la
+                out[part] = line
         return out
 
     def _noise(self, residual: np.ndarray) -> float:
@@ -440,9 +443,14 @@ class ThresholdDetector(Detector):
                 # The same subsample as the level's: every s-th residual from the block's first sample.
                 sigma = _per_block(st.shared_sigmas, id(st), j, lambda: self._noise(d[::_stride(b - a, st.stat)]))
             st.sigmas[j] = sigma
-        st.region_d = np.concatenate((st.region_d, d))
-        st.region_b = np.concatenate((st.region_b, baseline))
-        st.region_s = np.concatenate((st.region_s, np.full(len(d), sigma)))
+        if st.region_d.size:
+            st.region_d = np.concatenate((st.region_d, d))
+            st.region_b = np.concatenate((st.region_b, baseline))
+            st.region_s = np.concatenate((st.region_s, np.full(len(d), sigma)))
+        else:
+            # Usually the last scan used up the region: take the block's arrays as they are (they are only
+            # ever read, so sharing them with other detectors through the memo is safe).
+            st.region_d, st.region_b, st.region_s = d, baseline, np.full(len(d), sigma)
         st.buf.discard_before(b)
         self._scan_all(st, final=False)
 
