@@ -122,3 +122,34 @@ def test_run_filters_chunking_keeps_length():
     chunked = run_filters(chain, x, FS, chunk_samples=999)
     assert whole.shape == chunked.shape == x.shape
     assert np.max(np.abs(whole - chunked)) < 1e-9 * np.std(x)
+
+
+def test_leading_edge_list_path_equals_the_array_path(monkeypatch):
+    # leading_edge first looks at an event's first samples as a Python list (faster per event) and falls back
+    # to whole-array numpy searches when a search runs past them; both must give the same numbers, bit for bit.
+    import impactline.bandwidth as bandwidth
+
+    rng = np.random.default_rng(21)
+    cases = []
+    for _ in range(3000):
+        n = int(rng.integers(1, 600))
+        kind = rng.integers(0, 4)
+        if kind == 0:      # a decaying spike in noise, maybe after some context
+            y = 150 * np.exp(-np.arange(n) / rng.uniform(2, 300)) + rng.uniform(0, 20) * rng.standard_normal(n)
+        elif kind == 1:    # a slow ramp: the first peak lies beyond the list
+            y = np.linspace(0, 100, n) + rng.standard_normal(n)
+        elif kind == 2:    # a random walk, rectified or not
+            y = rng.standard_normal(n).cumsum() * rng.uniform(0.1, 3)
+            y = np.abs(y) if rng.random() < 0.5 else y
+        else:              # a step that never comes back down
+            y = np.r_[rng.uniform(-5, 5, int(rng.integers(0, 6))), np.full(n, 60.0)]
+            y = y + rng.standard_normal(y.size)
+        start = int(rng.integers(0, min(y.size, 8)))
+        cases.append((y, float(rng.choice([0.5, 1.0, 3.0, 10.0])), start, int(rng.choice([0, 1, 4]))))
+    fast = [bandwidth.leading_edge(y, noise, start=start, lookback=lb) for y, noise, start, lb in cases]
+    monkeypatch.setattr(bandwidth, "_leading_edge_list", lambda *args: False)
+    slow = [bandwidth.leading_edge(y, noise, start=start, lookback=lb) for y, noise, start, lb in cases]
+    assert [a is None for a in fast] == [b is None for b in slow]
+    for a, b in zip(fast, slow, strict=True):
+        if a is not None:
+            np.testing.assert_array_equal(np.array(a, dtype=float), np.array(b, dtype=float))
