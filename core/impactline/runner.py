@@ -465,11 +465,11 @@ def _measure_event(event: Event, history: _History, pre: int, post: int, fs: flo
     start = event.start_index - window_start
     end = event.end_index - window_start
     excursion = signal[start:end] - event.baseline_A
-    peak_at = int(np.argmax(event.polarity * excursion))
+    rising = excursion if event.polarity > 0 else -excursion   # polarity applied (exact: a sign flip)
+    peak_at = int(np.argmax(rising))
     peak = float(excursion[peak_at])
     delay_samples = (chain.delay_s or 0.0) * fs
-    onset_index = event.start_index + _onset_offset(event.polarity * excursion, event.noise_rms_A, fs,
-                                                    state.get("pulse_timing"))
+    onset_index = event.start_index + _onset_offset(rising, event.noise_rms_A, fs, state.get("pulse_timing"))
     start_s = (event.start_index - delay_samples) / fs
     end_s = (event.end_index - delay_samples) / fs
     previous = state["last_start"]
