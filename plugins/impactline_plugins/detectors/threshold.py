@@ -151,7 +151,7 @@ class _State:
     tracks: list[_Track] = field(default_factory=list)
     ready: list[Event] = field(default_factory=list)
     shared_levels: _SharedBlocks | None = None   # block -> (level, centre), shared with other detectors
-    shared_sigmas: _SharedBlocks | None = None   # block -> noise sigma, shared likewise
+    shared_sigmas: _SharedBlocks | None = None   # block -> (noise sigma, per-sample copy), shared likewise
     shared_residuals: _SharedBlocks | None = None   # block -> (baseline, samples - baseline) arrays, A
 
 
@@ -436,21 +436,29 @@ class ThresholdDetector(Detector):
 
         book = st.shared_residuals if sigma is None else None   # the record's tail is classified once
         baseline, d = _per_block(book, id(st), j, residuals)
+        sigmas = None
         if sigma is None:
             if self.noise_rms is not None:
                 sigma = self.noise_rms
             else:
-                # The same subsample as the level's: every s-th residual from the block's first sample.
-                sigma = _per_block(st.shared_sigmas, id(st), j, lambda: self._noise(d[::_stride(b - a, st.stat)]))
+                def noise() -> tuple[float, np.ndarray]:
+                    # The same subsample as the level's: every s-th residual from the block's first sample.
+                    value = self._noise(d[::_stride(b - a, st.stat)])
+                    return value, np.full(len(d), value)
+
+                # The per-sample copy the scan compares against is shared along with the value.
+                sigma, sigmas = _per_block(st.shared_sigmas, id(st), j, noise)
             st.sigmas[j] = sigma
+        if sigmas is None:
+            sigmas = np.full(len(d), sigma)
         if st.region_d.size:
             st.region_d = np.concatenate((st.region_d, d))
             st.region_b = np.concatenate((st.region_b, baseline))
-            st.region_s = np.concatenate((st.region_s, np.full(len(d), sigma)))
+            st.region_s = np.concatenate((st.region_s, sigmas))
         else:
             # Usually the last scan used up the region: take the block's arrays as they are (they are only
             # ever read, so sharing them with other detectors through the memo is safe).
-            st.region_d, st.region_b, st.region_s = d, baseline, np.full(len(d), sigma)
+            st.region_d, st.region_b, st.region_s = d, baseline, sigmas
         st.buf.discard_before(b)
         self._scan_all(st, final=False)
 
