@@ -14,7 +14,6 @@ Many files
 from __future__ import annotations
 
 import json
-import math
 import os
 import platform
 import shutil
@@ -54,7 +53,7 @@ from .output import (
 )
 from .pipeline import Pipeline, parse_pipeline
 from .robust import MAD_TO_SIGMA, row_medians
-from .stages import Column, Event, EventWindow, FilterInfo
+from .stages import Column, Event, EventWindow, FilterInfo, first_nonfinite
 
 __all__ = ["EventBranch", "NoiseMeter", "chain_info", "chain_figures", "describe_error", "read_checked", "FileResult",
            "RunResult", "process_recording", "run", "expand_inputs", "events_schema"]
@@ -171,11 +170,8 @@ class NoiseMeter:
 
 
 def _check_finite(samples: np.ndarray, first_index: int, path: Path) -> None:
-    # NaN or inf anywhere makes the sum non-finite: one reduction clears the usual chunk without a mask.
-    with np.errstate(over="ignore", invalid="ignore"):
-        total = float(np.add.reduce(samples))
-    if not math.isfinite(total) and not np.all(np.isfinite(samples)):
-        bad = int(np.flatnonzero(~np.isfinite(samples))[0])
+    bad = first_nonfinite(samples)
+    if bad is not None:
         raise InputError(path, f"sample is {samples[bad]} (not a finite number)",
                          "repair or trim the recording; impactline does not guess missing samples",
                          sample_index=first_index + bad)

@@ -213,6 +213,8 @@ def cluster_runs(runs: list[str | Path], method: str = "kmeans", params: dict[st
 
 #: Options of the gmm method's combination of mixture components.
 _COMBINE_OPTIONS = ("combine", "elbow", "clusters", "count_rule")
+#: Options only some methods declare (density: the smallest cluster; gmm: clusters too small to count).
+_METHOD_OPTIONS = ("min_cluster_size", "min_share", "minor")
 
 
 def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
@@ -228,15 +230,12 @@ def _cluster_params(args: argparse.Namespace, declared: dict) -> dict[str, Any]:
             raise ImpactlineError(f"--k expects 'auto' or a whole number of clusters, got {args.k!r}") from None
     if args.max_k is not None:
         params["max_k"] = args.max_k
-    for key in ("min_cluster_size", "min_share", "minor"):
-        if getattr(args, key, None) is not None:
-            params[key] = getattr(args, key)
-    for key in _COMBINE_OPTIONS:
+    for key in (*_METHOD_OPTIONS, *_COMBINE_OPTIONS):
         if getattr(args, key, None) is not None:
             params[key] = getattr(args, key)
     for key in list(params):
         if key not in declared:
-            if key in ("k", "max_k", "min_cluster_size", "min_share", "minor", *_COMBINE_OPTIONS):
+            if key in ("k", "max_k", *_METHOD_OPTIONS, *_COMBINE_OPTIONS):
                 raise ImpactlineError(f"--{key.replace('_', '-')} does not apply to --method {args.method}")
             params.pop(key)
     combine = params.get("combine", declared["combine"].default if "combine" in declared else None)

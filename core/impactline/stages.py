@@ -24,6 +24,7 @@ classifier
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -46,7 +47,23 @@ __all__ = [
     "EventWindow",
     "FeatureExtractor",
     "Classifier",
+    "first_nonfinite",
 ]
+
+def first_nonfinite(samples: np.ndarray) -> int | None:
+    """Index of the first NaN or infinite value of a 1-D array of samples; None when all are finite.
+
+    Stages pass finite currents to each other, so readers, the runner and detectors check every chunk:
+    NaN or inf anywhere makes the sum non-finite, so one reduction (no temporary mask) clears the usual
+    chunk, and only a non-finite sum, which huge finite values could also give, is checked sample by sample.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = float(np.add.reduce(samples))
+    if math.isfinite(total):
+        return None
+    finite = np.isfinite(samples)
+    return None if finite.all() else int(np.argmin(finite))
+
 
 #: Stage kinds, in pipeline order.
 KINDS: tuple[str, ...] = ("reader", "filter", "detector", "measure", "classifier")

@@ -602,8 +602,8 @@ class GaussianMixtureShapes(_ShapeClusterer):
             groups = [(j,) for j in range(k)]
         labels = np.argmax(posterior, axis=1)
         probability = posterior[np.arange(X.shape[0]), labels]
-        minor = minor_clusters(labels, len(groups), self.min_share)
         if self.min_share > 0:
+            minor = minor_clusters(labels, len(groups), self.min_share)
             in_minor = minor[labels]
             if self.minor == "reassign" and in_minor.any():
                 kept = posterior[in_minor][:, ~minor]

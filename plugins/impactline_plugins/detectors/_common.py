@@ -9,12 +9,12 @@ end. The buffer below lets a detector wait for whole blocks whatever the chunk s
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable
 
 import numpy as np
 from impactline import Detector, Event
 from impactline.robust import MAD_TO_SIGMA, median, robust_sigma
+from impactline.stages import first_nonfinite
 
 __all__ = ["MAD_TO_SIGMA", "SampleBuffer", "check_chunk", "detect_array", "median", "robust_sigma",
            "signature"]
@@ -37,13 +37,9 @@ def check_chunk(detector: str, x: np.ndarray, first_index: int, expected_index: 
             f"detector {detector!r}: chunks must be contiguous; expected first_index {expected_index}, "
             f"got {first_index}. Fix: pass every chunk of the stream, in order"
         )
-    # NaN or inf anywhere makes the sum NaN or inf, so one reduction (no temporary array) clears the usual
-    # chunk; only a non-finite sum, which huge finite values could also give, is checked sample by sample.
-    with np.errstate(over="ignore", invalid="ignore"):
-        total = float(np.add.reduce(x))
-    finite = None if math.isfinite(total) else np.isfinite(x)
-    if finite is not None and not finite.all():
-        bad = first_index + int(np.argmin(finite))
+    offset = first_nonfinite(x)
+    if offset is not None:
+        bad = first_index + offset
         raise ValueError(
             f"detector {detector!r}: sample {bad} is {float(x[bad - first_index])}; expected a finite "
             "current in A. Fix: repair or cut the recording there (a reader or filter produced it)"
